@@ -1,0 +1,152 @@
+"""Peaks in averaged spectra: interpolated peak search, local noise floor, SNR, sidebands.
+
+- :func:`find_peak`: the largest bin within ``target ± tolerance``, refined by
+  parabolic interpolation.
+- :func:`noise_floor`: the median of the bins around a frequency, the peak
+  and its immediate neighbours left out.
+- :func:`snr_db`: a peak over the local floor in dB (amplitude ratio).
+- :func:`sideband_ratio`: the modulation sidebands relative to their carrier.
+
+All functions take an amplitude spectrum ``amp`` on bins ``k * df_hz``.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+__all__ = ["Peak", "find_peak", "noise_floor", "snr_db", "sideband_ratio"]
+
+
+class Peak(tuple):
+    """``(freq_hz, amplitude, bin)`` of a found peak."""
+
+    __slots__ = ()
+
+    def __new__(cls, freq_hz, amplitude, bin_):
+        return super().__new__(cls, (freq_hz, amplitude, bin_))
+
+    freq_hz = property(lambda self: self[0])
+    amplitude = property(lambda self: self[1])
+    bin = property(lambda self: self[2])
+
+
+def _window_bins(target_hz, tol_hz, df_hz, n, min_half_bins=1.5):
+    half = max(tol_hz, min_half_bins * df_hz)
+    lo = max(int(math.floor((target_hz - half) / df_hz)), 1)
+    hi = min(int(math.ceil((target_hz + half) / df_hz)) + 1, n)
+    return lo, hi
+
+
+def find_peak(amp, df_hz, target_hz, tol_hz, min_half_bins=1.5):
+    """The largest bin near a target frequency.
+
+    Parameters
+    ----------
+    amp : ndarray
+        Amplitude spectrum.
+    df_hz : float
+        Bin spacing in Hz.
+    target_hz : float
+        Where the peak is expected.
+    tol_hz : float
+        Half-width of the search window (e.g. 2 % of the target for bearing
+        slip); widened to ``min_half_bins`` bins when narrower.
+    min_half_bins : float, default 1.5
+
+    Returns
+    -------
+    Peak or None
+        ``None`` when the window lies outside the spectrum.  The frequency is
+        refined by fitting a parabola through the peak bin and its neighbours;
+        the amplitude is the peak bin's value (no scalloping correction).
+    """
+    n = amp.shape[0]
+    lo, hi = _window_bins(target_hz, tol_hz, df_hz, n, min_half_bins)
+    if hi - lo < 1 or target_hz <= 0:
+        return None
+    k = lo + int(np.argmax(amp[lo:hi]))
+    offset = 0.0
+    if 0 < k < n - 1:
+        a, b, c = amp[k - 1], amp[k], amp[k + 1]
+        denom = a - 2.0 * b + c
+        if denom < 0:
+            offset = min(max(0.5 * (a - c) / denom, -0.5), 0.5)
+    return Peak((k + offset) * df_hz, float(amp[k]), k)
+
+
+def noise_floor(amp, df_hz, center_hz, half_width_hz, guard_bins=3):
+    """Median amplitude around a frequency, leaving out the centre.
+
+    Parameters
+    ----------
+    amp : ndarray
+        Amplitude spectrum.
+    df_hz : float
+        Bin spacing.
+    center_hz : float
+        Frequency of the peak being judged.
+    half_width_hz : float
+        Half-width of the neighbourhood used.
+    guard_bins : int, default 3
+        Bins either side of the centre left out (the peak's main lobe).
+
+    Returns
+    -------
+    float
+        The median, a robust estimate of the local floor that ignores other
+        isolated lines.  ``nan`` when no bin is left.
+    """
+    n = amp.shape[0]
+    c = int(round(center_hz / df_hz))
+    hw = max(int(round(half_width_hz / df_hz)), guard_bins + 4)
+    lo, hi = max(c - hw, 1), min(c + hw + 1, n)
+    left = amp[lo:max(c - guard_bins, lo)]
+    right = amp[min(c + guard_bins + 1, hi):hi]
+    if left.size + right.size == 0:
+        return math.nan
+    return float(np.median(np.concatenate((left, right))))
+
+
+def snr_db(peak_amplitude, floor_amplitude):
+    """Amplitude ratio in dB, ``20 log10(peak / floor)``; 0 when undefined."""
+    if not (floor_amplitude > 0 and peak_amplitude > 0):
+        return 0.0
+    return 20.0 * math.log10(peak_amplitude / floor_amplitude)
+
+
+def sideband_ratio(amp, df_hz, carrier_hz, modulation_hz, tol_hz):
+    """Sum of the two sidebands over the carrier, ``(A- + A+) / Ac``.
+
+    Parameters
+    ----------
+    amp : ndarray
+        Amplitude spectrum.
+    df_hz : float
+        Bin spacing in Hz.
+    carrier_hz : float
+        Frequency of the carrier line (e.g. the found BPFO).
+    modulation_hz : float
+        Sideband spacing (shaft speed around BPFO/BPFI, FTF around 2xBSF).
+    tol_hz : float
+        Search half-width for each line.
+
+    Returns
+    -------
+    ratio : float
+        ``(A(fc - fm) + A(fc + fm)) / A(fc)``.  For a pure amplitude
+        modulation ``(1 + m cos(2 pi fm t)) cos(2 pi fc t)`` each sideband is
+        ``m / 2`` of the carrier, so the ratio equals the modulation depth
+        ``m``.  ``nan`` when a line falls outside the spectrum.
+    lower, upper : float
+        The two sideband amplitudes.
+    """
+    if not modulation_hz > 0:
+        raise ValueError(f"{modulation_hz=} must be positive")
+    c = find_peak(amp, df_hz, carrier_hz, tol_hz)
+    lo = find_peak(amp, df_hz, carrier_hz - modulation_hz, tol_hz)
+    hi = find_peak(amp, df_hz, carrier_hz + modulation_hz, tol_hz)
+    if c is None or lo is None or hi is None or carrier_hz - modulation_hz <= 0 or c.amplitude <= 0:
+        return math.nan, math.nan, math.nan
+    return (lo.amplitude + hi.amplitude) / c.amplitude, lo.amplitude, hi.amplitude

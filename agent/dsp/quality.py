@@ -1,0 +1,127 @@
+"""Signal-quality gate: is a capture fit to be judged at all?
+
+:class:`QualityGate` watches the samples as they stream through the pipeline
+and, at the end of a capture, returns the flags that make the capture unfit:
+
+- ``"nonfinite"``: NaN or infinity in the data;
+- ``"clipped"``: the converter's full scale was reached (or, with no known
+  full scale, the signal sits flat at its extreme value);
+- ``"flat"``: the sensor is silent, disconnected or stuck (RMS below a floor,
+  or no variation at all);
+- ``"dc_offset"``: a large constant offset (an accelerometer input is
+  AC-coupled; an offset means a failing sensor, cable or bias supply);
+- ``"too_short"``: less signal than one analysis segment;
+- ``"overrun"`` and ``"wrong_rate"`` are added by the acquisition.
+
+A flagged capture is still published with its levels and flags, but it never
+yields a bearing finding and never changes an alert state.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+__all__ = ["QualityGate", "FLAGS"]
+
+FLAGS = ("nonfinite", "clipped", "flat", "dc_offset", "too_short", "overrun", "wrong_rate")
+
+#: Share of the samples at full scale above which a capture counts as clipped.
+CLIP_SHARE = 1e-4
+#: Without a known full scale: repeated extreme values counted as a flat top.
+FLAT_TOP_MIN = 8
+#: Below this RMS (m/s²) no real running machine is being measured.
+FLAT_RMS_M_S2 = 1e-3
+#: Relative to full scale, the converter's own noise (-80 dBFS).
+FLAT_RMS_FS = 1e-4
+#: An offset larger than this many RMS, and than DC_FS of full scale.
+DC_RMS_RATIO = 3.0
+DC_FS = 0.05
+
+
+class QualityGate:
+    """Streaming quality checks of one capture.
+
+    Parameters
+    ----------
+    max_block : int
+        Largest block given to :meth:`add` (scratch allocated once).
+    full_scale_m_s2 : float, optional
+        Acceleration at the converter's full scale.  ``None`` for recordings
+        stored in m/s² with no known full scale: clipping is then recognised
+        by a flat top, the same extreme value repeated.
+    """
+
+    def __init__(self, max_block, full_scale_m_s2=None):
+        if full_scale_m_s2 is not None and not full_scale_m_s2 > 0:
+            raise ValueError(f"{full_scale_m_s2=} must be positive or None")
+        self.full_scale_m_s2 = full_scale_m_s2
+        self._abs = np.empty(max_block)
+        self.reset()
+
+    def reset(self):
+        """Start a new capture."""
+        self.n = 0
+        self.nonfinite = False
+        self.at_full_scale = 0
+        self.extreme = 0.0
+        self.at_extreme = 0
+
+    def add(self, x):
+        """Inspect a block of samples in m/s²."""
+        nb = x.shape[0]
+        if nb == 0:
+            return
+        self.n += nb
+        if not math.isfinite(float(x.sum())):
+            self.nonfinite = True
+            return
+        a = self._abs[:nb]
+        np.abs(x, out=a)
+        peak = float(a.max())
+        if self.full_scale_m_s2 is not None:
+            self.at_full_scale += int(np.count_nonzero(a >= 0.999 * self.full_scale_m_s2))
+        if peak > self.extreme:
+            self.extreme = peak
+            self.at_extreme = int(np.count_nonzero(a == peak))
+        elif peak == self.extreme:
+            self.at_extreme += int(np.count_nonzero(a == peak))
+
+    def flags(self, mean, rms, peak_to_peak, min_samples):
+        """Flags of the capture.
+
+        Parameters
+        ----------
+        mean, rms : float
+            Mean and RMS (about the mean) of the capture, m/s².
+        peak_to_peak : float
+            Largest minus smallest sample, m/s².
+        min_samples : int
+            Samples needed for one analysis segment.
+
+        Returns
+        -------
+        list of str
+        """
+        out = []
+        if self.nonfinite:
+            return ["nonfinite"]
+        if self.n < min_samples:
+            out.append("too_short")
+        if self.full_scale_m_s2 is not None:
+            if self.at_full_scale > max(CLIP_SHARE * self.n, 1):
+                out.append("clipped")
+        elif self.at_extreme >= max(FLAT_TOP_MIN, CLIP_SHARE * self.n) and self.extreme > 0:
+            out.append("clipped")
+        floor = FLAT_RMS_M_S2
+        if self.full_scale_m_s2 is not None:
+            floor = max(floor, FLAT_RMS_FS * self.full_scale_m_s2)
+        if peak_to_peak == 0.0 or rms < floor:
+            out.append("flat")
+        dc_limit = DC_RMS_RATIO * rms
+        if self.full_scale_m_s2 is not None:
+            dc_limit = max(dc_limit, DC_FS * self.full_scale_m_s2)
+        if abs(mean) > dc_limit and "flat" not in out:
+            out.append("dc_offset")
+        return out

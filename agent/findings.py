@@ -1,0 +1,254 @@
+"""Defect evidence in the envelope spectrum, and what it means in plain words.
+
+- :func:`search_defect`: for one defect frequency, its first harmonics (peak
+  within ± the slip tolerance, amplitude, SNR over the local floor), and the
+  sideband ratio at the modulating frequency.
+- :func:`judge`: the findings (which signatures are present, how strong, how
+  modulated), each with a sentence a maintenance technician can act on.
+
+Rules (all thresholds are module constants, documented here):
+
+- a harmonic *stands out* when it is at least ``HARMONIC_SNR_DB`` above the
+  median of its neighbourhood;
+- a harmonic whose search window also holds a shaft harmonic or another
+  defect's harmonic is *ambiguous* and never counted as evidence;
+- a defect signature is present when its fundamental stands out by at least
+  ``FUNDAMENTAL_SNR_DB`` and at least ``MIN_HARMONICS`` unambiguous harmonics
+  (the fundamental included) stand out;
+- the signature is *modulated* when the sideband ratio at the fundamental is
+  at least ``SIDEBAND_RATIO_MIN`` and one sideband stands out;
+- severity: ``high`` from ``HIGH_SNR_DB`` or ``HIGH_HARMONICS`` harmonics,
+  ``medium`` from ``MEDIUM_SNR_DB`` or ``MEDIUM_HARMONICS``, else ``low``.
+
+A capture with any quality flag gets no finding at all.
+"""
+
+from __future__ import annotations
+
+import math
+
+from agent.dsp.peaks import find_peak, noise_floor, sideband_ratio, snr_db
+
+__all__ = ["DEFECTS", "search_defect", "count_harmonics", "judge", "summary_sentence"]
+
+HARMONIC_SNR_DB = 6.0
+FUNDAMENTAL_SNR_DB = 10.0
+MIN_HARMONICS = 2
+SIDEBAND_RATIO_MIN = 0.3
+MEDIUM_SNR_DB = 16.0
+HIGH_SNR_DB = 25.0
+MEDIUM_HARMONICS = 4
+HIGH_HARMONICS = 6
+
+#: key -> (label, what it is, modulating frequency: "shaft" | "cage" | None)
+DEFECTS = {
+    "bpfo": ("BPFO", "Outer-race", "shaft"),
+    "bpfi": ("BPFI", "Inner-race", "shaft"),
+    "bsf": ("2xBSF", "Rolling-element", "cage"),
+    "ftf": ("FTF", "Cage", None),
+}
+
+
+def _is_local_max(amp, k):
+    return 0 < k < amp.shape[0] - 1 and amp[k] >= amp[k - 1] and amp[k] >= amp[k + 1]
+
+
+def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=None):
+    """Evidence of one defect frequency in an envelope amplitude spectrum.
+
+    Parameters
+    ----------
+    amp : ndarray
+        Envelope amplitude spectrum on bins ``k * df_hz``.
+    df_hz : float
+        Bin spacing in Hz.
+    expected_hz : float
+        Defect frequency from the bearing geometry and the shaft speed.
+    harmonics : int
+        How many harmonics to search (fundamental included).
+    tolerance : float
+        Relative half-width of the fundamental's search window (slip), e.g.
+        0.02.  Once the fundamental is found, harmonic ``h`` is sought near
+        ``h`` times the *found* frequency, within ``tolerance / 4`` (the
+        harmonics of a slipping bearing stay exact multiples of its actual
+        rate).
+    modulation_hz : float, optional
+        Sideband spacing to measure around the fundamental.
+
+    Returns
+    -------
+    dict
+        ``expected_hz``, ``found_hz`` (or None), ``amplitude``, ``snr_db``
+        (of the fundamental), ``lines``: a list of ``(h, freq_hz, amplitude,
+        snr_db)`` for each harmonic whose peak is a true local maximum,
+        ``searched`` (harmonics inside the spectrum), ``sideband_ratio``,
+        ``sideband_snr_db``, ``modulation_hz``.  :func:`count_harmonics`
+        completes it with ``harmonics`` and ``peak_snr_db``.
+    """
+    n_hz = amp.shape[0] * df_hz
+    floor_hw = max(0.25 * expected_hz, 8 * df_hz)
+    out = {"expected_hz": expected_hz, "found_hz": None, "amplitude": 0.0, "snr_db": 0.0,
+           "lines": [], "searched": 0, "sideband_ratio": None, "sideband_snr_db": None,
+           "modulation_hz": modulation_hz, "harmonics": 0, "peak_snr_db": 0.0}
+    base = expected_hz
+    for h in range(1, harmonics + 1):
+        target = h * base
+        tol_hz = tolerance * target if h == 1 else 0.25 * tolerance * target
+        if target + tol_hz + 8 * df_hz >= n_hz:
+            break
+        out["searched"] = h
+        pk = find_peak(amp, df_hz, target, tol_hz)
+        if pk is None:
+            break
+        if not _is_local_max(amp, pk.bin):
+            continue
+        s = snr_db(pk.amplitude, noise_floor(amp, df_hz, pk.freq_hz, floor_hw))
+        if h == 1:
+            out.update(found_hz=pk.freq_hz, amplitude=pk.amplitude, snr_db=s)
+            if s >= HARMONIC_SNR_DB:
+                base = pk.freq_hz
+        out["lines"].append((h, pk.freq_hz, pk.amplitude, s))
+    if out["found_hz"] is not None and modulation_hz:
+        fc = out["found_hz"]
+        ratio, lower, upper = sideband_ratio(amp, df_hz, fc, modulation_hz,
+                                             0.25 * tolerance * fc + 1.5 * df_hz)
+        if math.isfinite(ratio):
+            out["sideband_ratio"] = ratio
+            out["sideband_snr_db"] = snr_db(max(lower, upper), noise_floor(amp, df_hz, fc, floor_hw))
+    return out
+
+
+def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10):
+    """Count the harmonics that stand out and are not explained by something else.
+
+    A line is *ambiguous* when it lies within two bins of a low shaft
+    harmonic (looseness and rubs put those in the envelope) or of a standing
+    line of another defect whose fundamental stands out.
+
+    Parameters
+    ----------
+    evidence : dict
+        ``{key: search_defect(...)}``; updated in place with ``harmonics``
+        (unambiguous harmonics that stand out), ``peak_snr_db`` (best
+        unambiguous SNR of the first three harmonics) and
+        ``fundamental_ambiguous``.
+    shaft_hz, df_hz : float
+    max_shaft_order : int, default 10
+    """
+    guard = 2.0 * df_hz
+    strong = {k: [ln[1] for ln in ev["lines"] if ln[3] >= HARMONIC_SNR_DB]
+              for k, ev in evidence.items() if ev["snr_db"] >= FUNDAMENTAL_SNR_DB}
+    for key, ev in evidence.items():
+        others = [f for k, fs in strong.items() if k != key for f in fs]
+        count, best, fund_amb = 0, 0.0, ev["found_hz"] is None
+        for h, f, _, s in ev["lines"]:
+            k = round(f / shaft_hz)
+            amb = (1 <= k <= max_shaft_order and abs(f - k * shaft_hz) <= guard) or any(
+                abs(f - o) <= guard for o in others)
+            if h == 1:
+                fund_amb = amb
+            if amb:
+                continue
+            if s >= HARMONIC_SNR_DB:
+                count += 1
+            if h <= 3:
+                best = max(best, s)
+        ev.update(harmonics=count, peak_snr_db=best, fundamental_ambiguous=fund_amb)
+    return evidence
+
+
+def _severity(ev):
+    if ev["peak_snr_db"] >= HIGH_SNR_DB or ev["harmonics"] >= HIGH_HARMONICS:
+        return "high"
+    if ev["peak_snr_db"] >= MEDIUM_SNR_DB or ev["harmonics"] >= MEDIUM_HARMONICS:
+        return "medium"
+    return "low"
+
+
+def _present(ev):
+    if ev["found_hz"] is None or ev["fundamental_ambiguous"]:
+        return ev["harmonics"] >= MIN_HARMONICS + 1 and ev["peak_snr_db"] >= FUNDAMENTAL_SNR_DB
+    return ev["snr_db"] >= FUNDAMENTAL_SNR_DB and ev["harmonics"] >= MIN_HARMONICS
+
+
+def _modulated(ev):
+    return (ev["sideband_ratio"] is not None and ev["sideband_ratio"] >= SIDEBAND_RATIO_MIN
+            and (ev["sideband_snr_db"] or 0.0) >= HARMONIC_SNR_DB)
+
+
+_MEANING = {
+    ("bpfo", "shaft"): ("with sidebands at shaft speed: the impacts swell and fade once per "
+                        "turn, so the load turns with the shaft, typically unbalance."),
+    ("bpfo", "none"): ("evenly spaced with no shaft-rate sidebands: the load stays put "
+                       "(gravity, the load zone), as usual for an outer-race defect."),
+    ("bpfi", "shaft"): ("with sidebands at shaft speed: the defect turns with the shaft through "
+                        "a stationary load zone (shaft weight, belt pull)."),
+    ("bpfi", "none"): ("evenly spaced with no shaft-rate sidebands: the load turns with the "
+                       "inner race, as a dominant unbalance does."),
+    ("bsf", "cage"): ("with sidebands at the cage rate (FTF): a damaged rolling element is "
+                      "carried through the load zone once per cage turn."),
+    ("bsf", "none"): "with no cage-rate sidebands.",
+    ("ftf", "none"): "at the cage rate: a worn or broken cage, or a rolling element defect.",
+}
+
+
+def _text(key, ev, modulation, severity):
+    label, what, _ = DEFECTS[key]
+    mod_word = "shaft" if modulation == "shaft" else ("cage" if modulation == "cage" else "none")
+    meaning = _MEANING.get((key, mod_word), "")
+    strength = {"low": "Weak", "medium": "Clear", "high": "Strong"}[severity]
+    found = ev["found_hz"] if ev["found_hz"] is not None else ev["expected_hz"]
+    return (f"{strength} {what.lower()} defect signature at {found:.1f} Hz ({label}, "
+            f"{ev['harmonics']} of {ev['searched']} harmonics, {ev['peak_snr_db']:.0f} dB above "
+            f"the noise floor), {meaning}")
+
+
+def judge(evidence, flagged):
+    """Findings from the evidence of every defect.
+
+    Parameters
+    ----------
+    evidence : dict
+        ``{"bpfo": search_defect(...), "bpfi": ..., "bsf": ..., "ftf": ...}``.
+    flagged : bool
+        True when the capture failed the quality gate: no finding then.
+
+    Returns
+    -------
+    list of dict
+        ``{"defect", "severity", "modulation", "text"}`` for each signature
+        present; an empty list means no bearing defect signature.
+    """
+    if flagged:
+        return []
+    out = []
+    for key in ("bpfo", "bpfi", "bsf", "ftf"):
+        ev = evidence.get(key)
+        if ev is None or not _present(ev):
+            continue
+        mod_kind = DEFECTS[key][2]
+        modulation = mod_kind if (mod_kind and _modulated(ev)) else "none"
+        severity = _severity(ev)
+        out.append({"defect": key, "severity": severity, "modulation": modulation,
+                    "text": _text(key, ev, modulation, severity)})
+    # A cage line explained by a rolling-element signature's sidebands is not a second finding.
+    keys = {f["defect"] for f in out}
+    if "ftf" in keys and "bsf" in keys:
+        out = [f for f in out if f["defect"] != "ftf"]
+    return out
+
+
+def summary_sentence(findings):
+    """One sentence on what the modulation says about the load, or ''."""
+    mods = {f["defect"]: f["modulation"] for f in findings}
+    o, i = mods.get("bpfo"), mods.get("bpfi")
+    if o == "shaft" and i == "shaft":
+        return ("Both races show shaft-rate modulation: a rotating load (unbalance) and a "
+                "stationary load (weight, load zone) act together.")
+    if o == "shaft":
+        return "Shaft-rate modulation of the outer-race impacts points to a rotating load: unbalance."
+    if i == "shaft":
+        return "Shaft-rate modulation of the inner-race impacts points to a stationary load zone."
+    if o == "none" and i == "none":
+        return "Both races show even impacts: no dominant varying load."
+    return ""

@@ -1,0 +1,415 @@
+"""The fixed-memory analysis of one measurement point.
+
+:class:`Pipeline` owns every work array of the analysis, allocated once when
+it is built.  A capture streams through it in blocks of any size
+(:meth:`Pipeline.feed`), is cut into Hann-windowed segments with 50 % overlap,
+and each segment's single FFT serves everything:
+
+- the Welch average of the acceleration power spectrum (velocity RMS in the
+  ISO band, the shaft speed);
+- on the first segments, the spectral kurtosis of candidate bands (when the
+  demodulation band is chosen automatically); these segments' spectra are kept
+  in a fixed look-ahead store and replayed once the band is chosen;
+- the squared-envelope power spectrum of the demodulation band, averaged.
+
+Levels (RMS, peak, crest factor, kurtosis) and the quality gate see every
+sample once, as it arrives.  :meth:`Pipeline.finish` turns the averages into
+an :class:`Analysis`.  Nothing allocated per segment grows with the capture
+length or the number of captures.
+
+Public API
+----------
+- :func:`plan_segment(fs, capture_s, point)` -> ``nperseg``.
+- :class:`Pipeline(point, sample_rate_hz, capture_s, ...)`: ``start()``,
+  ``feed(block)``, ``finish(extra_flags)`` -> :class:`Analysis`,
+  ``analyze(x)`` (a whole array, for tests and tools).
+- :class:`Analysis`: ``to_dict()``, ``envelope_spectrum()``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from agent.dsp.bearing import defect_frequencies_hz
+from agent.dsp.envelope import band_analytic, envelope_amplitude, envelope_power, fast_len, taper_squared
+from agent.dsp.iso import iso_zone, velocity_band_hz
+from agent.dsp.kurtogram import BandKurtosis, candidate_bands
+from agent.dsp.levels import Moments
+from agent.dsp.quality import QualityGate
+from agent.dsp.spectrum import hann, psd_scale, velocity_rms_mm_s
+from agent.dsp.speed import refine_shaft_hz
+from agent.findings import count_harmonics, judge, search_defect, summary_sentence
+
+__all__ = ["Pipeline", "Analysis", "plan_segment", "MAX_BLOCK"]
+
+#: Largest block :meth:`Pipeline.feed` works on at once (longer blocks are split).
+MAX_BLOCK = 8192
+#: Segments whose spectra are kept for the automatic band choice.
+LOOKAHEAD_SEGMENTS = 2
+#: Lowest and highest edge of an automatically chosen band, relative limits.
+AUTO_BAND_LOW_HZ = 500.0
+AUTO_BAND_TOP = 0.45  # of the sample rate: clear of the anti-alias filter
+MIN_NPERSEG = 4096
+
+
+def _pow2_floor(n):
+    return 1 << (int(n).bit_length() - 1)
+
+
+def _pow2_ceil(n):
+    return 1 << int(math.ceil(n) - 1).bit_length()
+
+
+def plan_segment(fs, capture_s, point):
+    """Segment length for a point: fine enough to separate sidebands.
+
+    Parameters
+    ----------
+    fs : float
+        Sample rate in Hz.
+    capture_s : float
+        Capture length in s.
+    point : PointSettings
+
+    Returns
+    -------
+    int
+        A power of two: the resolution asked for in ``point.envelope``, or
+        the smaller of 1 Hz and a sixth of the cage rate (so FTF sidebands
+        around 2xBSF are resolved), limited so that a capture holds at least
+        three segments, and never below ``MIN_NPERSEG``.
+    """
+    if point.envelope.resolution_hz > 0:
+        target = point.envelope.resolution_hz
+    else:
+        ftf_hz = point.bearing.orders.ftf * point.machine.shaft_hz
+        target = min(1.0, ftf_hz / 6.0)
+    n = _pow2_ceil(fs / target)
+    cap = _pow2_floor(max(fs * capture_s / 2.0, MIN_NPERSEG))
+    return max(min(n, cap), MIN_NPERSEG)
+
+
+@dataclass(frozen=True)
+class Analysis:
+    """The result of one capture of one point (see :meth:`to_dict`)."""
+
+    point: str
+    capture_s: float
+    sample_rate_hz: float
+    levels: dict
+    shaft_hz: float
+    shaft_hz_nominal: float
+    speed_source: str
+    envelope: dict
+    quality: tuple
+    defects: dict
+    findings: tuple
+    summary: str
+    _spectrum: tuple = field(default=(None, None), repr=False, compare=False)
+
+    @property
+    def flagged(self):
+        """True when the capture failed the quality gate."""
+        return bool(self.quality)
+
+    def envelope_spectrum(self):
+        """``(freqs_hz, amplitude)`` of the averaged squared-envelope spectrum."""
+        return self._spectrum
+
+    def to_dict(self):
+        """The analysis JSON (the ``analyze --json`` output and the result body)."""
+        return {
+            "point": self.point,
+            "capture_s": self.capture_s,
+            "sample_rate_hz": self.sample_rate_hz,
+            "levels": dict(self.levels),
+            "shaft_hz": self.shaft_hz,
+            "shaft_hz_nominal": self.shaft_hz_nominal,
+            "speed_source": self.speed_source,
+            "envelope": dict(self.envelope),
+            "quality": list(self.quality),
+            "defects": {k: dict(v) for k, v in self.defects.items()},
+            "findings": [dict(f) for f in self.findings],
+            "summary": self.summary,
+        }
+
+
+class Pipeline:
+    """Streaming, fixed-memory analysis of one measurement point.
+
+    Parameters
+    ----------
+    point : PointSettings
+        Machine, bearing, envelope settings of the point.
+    sample_rate_hz : float
+        Sample rate of the signal.
+    capture_s : float
+        Nominal capture length; sets the segment length (see
+        :func:`plan_segment`).  Longer or shorter captures still work.
+    full_scale_m_s2 : float, optional
+        Acceleration at the converter's full scale, for the clipping check.
+    lowest_trusted_hz : float, default 0.0
+        Lowest frequency the input can see; raises the velocity band's lower
+        edge.
+    """
+
+    def __init__(self, point, sample_rate_hz, capture_s, full_scale_m_s2=None,
+                 lowest_trusted_hz=0.0):
+        fs = float(sample_rate_hz)
+        if not fs >= 1000:
+            raise ValueError(f"{sample_rate_hz=} must be at least 1000 Hz")
+        if not capture_s > 0:
+            raise ValueError(f"{capture_s=} must be positive")
+        self.point = point
+        self.fs = fs
+        self.capture_s = float(capture_s)
+        self.nperseg = plan_segment(fs, capture_s, point)
+        self.hop = self.nperseg // 2
+        self.df_hz = fs / self.nperseg
+        self.nbins = self.nperseg // 2 + 1
+        self.lowest_trusted_hz = float(lowest_trusted_hz)
+
+        # Frequencies the envelope spectrum has to hold: every harmonic searched,
+        # at the fastest speed allowed, plus room for sidebands and the floor.
+        m = point.machine
+        fastest = m.shaft_hz * (1.0 + m.speed_search)
+        top_order = max(point.bearing.orders.bpfi, 2.0 * point.bearing.orders.bsf,
+                        point.bearing.orders.bpfo)
+        self.env_max_hz = (point.envelope.harmonics + 0.5) * top_order * fastest * (
+            1.0 + point.envelope.tolerance) + 1.5 * fastest
+        if self.env_max_hz >= AUTO_BAND_TOP * fs:
+            raise ValueError(
+                f"{sample_rate_hz=} is too low for point {point.name!r}: the envelope spectrum must "
+                f"reach {self.env_max_hz:.0f} Hz; lower envelope.harmonics or raise the sample rate")
+        self.env_bins = int(math.ceil(self.env_max_hz / self.df_hz)) + 1
+
+        if point.envelope.band_hz is not None:
+            lo_hz, hi_hz = point.envelope.band_hz
+            if hi_hz >= fs / 2:
+                raise ValueError(f"envelope band {point.envelope.band_hz} must lie below fs/2 = {fs / 2}")
+            self.bands = [(lo_hz, hi_hz)]
+            self.band_source = "config"
+        else:
+            self.bands = candidate_bands(fs, self.env_max_hz, AUTO_BAND_LOW_HZ, AUTO_BAND_TOP * fs)
+            if not self.bands:
+                raise ValueError(f"no demodulation band of at least {self.env_max_hz:.0f} Hz fits "
+                                 f"between {AUTO_BAND_LOW_HZ:g} Hz and {AUTO_BAND_TOP * fs:.0f} Hz")
+            self.band_source = "auto"
+
+        widest = max(self._band_bins(b)[1] - self._band_bins(b)[0] for b in self.bands)
+        m_max = fast_len(widest)
+        if m_max // 2 + 1 < self.env_bins:
+            m_max = _pow2_ceil(2 * self.env_bins)
+
+        # --- work arrays, allocated once -------------------------------------------------
+        self._window = hann(self.nperseg)
+        self._scale = psd_scale(self._window, fs)
+        self._seg = np.zeros(self.nperseg)
+        self._xw = np.empty(self.nperseg)
+        self._spec = np.empty(self.nbins, dtype=complex)
+        self._pw = np.empty(self.nbins)
+        self._psd_acc = np.zeros(self.nbins)
+        self._psd = np.empty(self.nbins)
+        self._store = np.empty((LOOKAHEAD_SEGMENTS, self.nbins), dtype=complex)
+        self._zwork = np.empty(m_max, dtype=complex)
+        self._z = np.empty(m_max, dtype=complex)
+        self._sq = np.empty(m_max)
+        self._tmp = np.empty(m_max)
+        self._espec = np.empty(m_max // 2 + 1, dtype=complex)
+        self._taper = np.empty(m_max)
+        self._env_acc = np.zeros(self.env_bins)
+        self._env_amp = np.empty(self.env_bins)
+        self._env_freqs = np.arange(self.env_bins) * self.df_hz
+        self._moments = Moments(MAX_BLOCK)
+        self._gate = QualityGate(MAX_BLOCK, full_scale_m_s2)
+        self._kurt = BandKurtosis(fs, self.nperseg, self.bands) if self.band_source == "auto" else None
+        lo_v, hi_v = velocity_band_hz(m.shaft_hz, self.lowest_trusted_hz)
+        self.velocity_band_hz = (lo_v, min(hi_v, 0.45 * fs))
+        k_lo = int(math.ceil(self.velocity_band_hz[0] / self.df_hz))
+        k_hi = int(math.floor(self.velocity_band_hz[1] / self.df_hz)) + 1
+        f = np.arange(k_lo, k_hi) * self.df_hz
+        self._vel_weight = 1.0 / (2.0 * np.pi * f) ** 2
+        self.start()
+
+    # ------------------------------------------------------------------ helpers
+    def _band_bins(self, band):
+        lo_bin = max(int(round(band[0] / self.df_hz)), 1)
+        hi_bin = min(int(round(band[1] / self.df_hz)), self.nbins)
+        return lo_bin, hi_bin
+
+    def _select_band(self, band):
+        self.band = band
+        lo_bin, hi_bin = self._band_bins(band)
+        self._lo_bin, self._hi_bin = lo_bin, hi_bin
+        self._m = max(fast_len(hi_bin - lo_bin), _pow2_ceil(2 * self.env_bins))
+        self._m = min(self._m, self._z.shape[0])
+        taper_squared(self._m, self._taper)
+        self._taper_sum = float(self._taper[:self._m].sum())
+
+    # ------------------------------------------------------------------ streaming
+    def start(self):
+        """Begin a new capture (forget the previous one; nothing is reallocated)."""
+        self._fill = 0
+        self._segments = 0
+        self._env_segments = 0
+        self._stored = 0
+        self._psd_acc[:] = 0.0
+        self._env_acc[:] = 0.0
+        self._moments.reset()
+        self._gate.reset()
+        self.band_kurtosis = None
+        if self._kurt is not None:
+            self._kurt.reset()
+            self.band = None
+        else:
+            self._select_band(self.bands[0])
+
+    def feed(self, block):
+        """Stream a block of acceleration samples (1-D, m/s²) into the capture."""
+        block = np.asarray(block, dtype=float)
+        if block.ndim != 1:
+            raise ValueError(f"block must be 1-D, got shape {block.shape}")
+        pos = 0
+        n = block.shape[0]
+        while pos < n:
+            take = min(n - pos, MAX_BLOCK, self.nperseg - self._fill)
+            part = block[pos:pos + take]
+            self._moments.add(part)
+            self._gate.add(part)
+            self._seg[self._fill:self._fill + take] = part
+            self._fill += take
+            pos += take
+            if self._fill == self.nperseg:
+                self._segment()
+                self._seg[:self.hop] = self._seg[self.hop:]
+                self._fill = self.hop
+
+    def _segment(self):
+        seg = self._seg
+        np.subtract(seg, float(seg.sum()) / self.nperseg, out=self._xw)
+        self._xw *= self._window
+        np.fft.rfft(self._xw, out=self._spec)
+        np.multiply(self._spec.real, self._spec.real, out=self._pw)
+        self._psd_acc += self._pw
+        np.multiply(self._spec.imag, self._spec.imag, out=self._pw)
+        self._psd_acc += self._pw
+        self._segments += 1
+        if self.band is None:
+            self._kurt.add(self._spec)
+            self._store[self._stored] = self._spec
+            self._stored += 1
+            if self._stored == LOOKAHEAD_SEGMENTS:
+                self._choose_band()
+        else:
+            self._envelope(self._spec)
+
+    def _choose_band(self):
+        lo, hi, k = self._kurt.best()
+        self.band_kurtosis = k
+        self._select_band((lo, hi))
+        for i in range(self._stored):
+            self._envelope(self._store[i])
+        self._stored = 0
+
+    def _envelope(self, spectrum):
+        m = self._m
+        z = band_analytic(spectrum, self.nperseg, self._lo_bin, self._hi_bin,
+                          self._zwork[:m], self._z[:m])
+        envelope_power(z, self._taper[:m], self._sq[:m], self._tmp[:m], self._espec, self._env_acc)
+        self._env_segments += 1
+
+    # ------------------------------------------------------------------ result
+    def finish(self, extra_flags=()):
+        """End the capture and compute the :class:`Analysis`.
+
+        Parameters
+        ----------
+        extra_flags : iterable of str
+            Flags raised by the acquisition (``"overrun"``, ``"wrong_rate"``).
+        """
+        if self.band is None and self._stored:
+            self._choose_band()
+        mom = self._moments
+        flags = self._gate.flags(mom.mean, mom.rms, mom.max - mom.min if mom.n else 0.0,
+                                 self.nperseg)
+        for f in extra_flags:
+            if f not in flags:
+                flags.append(f)
+        p = self.point
+        nominal = p.machine.shaft_hz
+        levels = {
+            "accel_rms_m_s2": mom.rms,
+            "accel_peak_m_s2": mom.peak,
+            "crest_factor": mom.crest_factor,
+            "kurtosis": mom.kurtosis,
+            "velocity_rms_mm_s": None,
+            "velocity_band_hz": list(self.velocity_band_hz),
+            "iso_zone": None,
+            "iso_group": p.machine.iso_group,
+            "support": p.machine.support,
+        }
+        shaft_hz, speed_source = nominal, "nominal"
+        defects = {}
+        spectrum = (None, None)
+        band = list(self.band) if self.band is not None else None
+        if self._segments and "nonfinite" not in flags:
+            psd = self._psd
+            np.multiply(self._psd_acc, self._scale / self._segments, out=psd)
+            psd[0] *= 0.5
+            psd[-1] *= 0.5
+            k_lo = int(math.ceil(self.velocity_band_hz[0] / self.df_hz))
+            vel = velocity_rms_mm_s(psd, self.df_hz, *self.velocity_band_hz,
+                                    weight=self._vel_weight[:max(psd.shape[0] - k_lo, 0)])
+            levels["velocity_rms_mm_s"] = vel
+            levels["iso_zone"] = iso_zone(vel, p.machine.iso_group, p.machine.support)
+            shaft_hz, speed_source = refine_shaft_hz(psd, self.df_hz, nominal, p.machine.speed_search)
+            if self._env_segments:
+                amp = envelope_amplitude(self._env_acc, self._env_segments, self._taper_sum,
+                                         self._env_amp)
+                defects = self._defects(amp, shaft_hz)
+                spectrum = (self._env_freqs, amp)
+        findings = judge(defects, flagged=bool(flags)) if defects else []
+        return Analysis(
+            point=p.name,
+            capture_s=mom.n / self.fs,
+            sample_rate_hz=self.fs,
+            levels=levels,
+            shaft_hz=shaft_hz,
+            shaft_hz_nominal=nominal,
+            speed_source=speed_source,
+            envelope={"band_hz": band, "band_source": self.band_source,
+                      "band_kurtosis": self.band_kurtosis, "resolution_hz": self.df_hz,
+                      "segments": self._env_segments},
+            quality=tuple(flags),
+            defects={k: _public(v) for k, v in defects.items()},
+            findings=tuple(findings),
+            summary=summary_sentence(findings),
+            _spectrum=spectrum,
+        )
+
+    def _defects(self, amp, shaft_hz):
+        p = self.point
+        freqs = defect_frequencies_hz(p.bearing.orders, shaft_hz)
+        plan = {"bpfo": (freqs["bpfo"], shaft_hz), "bpfi": (freqs["bpfi"], shaft_hz),
+                "bsf": (freqs["bsf2"], freqs["ftf"]), "ftf": (freqs["ftf"], None)}
+        out = {}
+        for key, (f0, fm) in plan.items():
+            out[key] = search_defect(amp, self.df_hz, f0, p.envelope.harmonics,
+                                     p.envelope.tolerance, modulation_hz=fm)
+        out["bsf"]["spin_hz"] = freqs["bsf"]
+        return count_harmonics(out, shaft_hz, self.df_hz)
+
+    def analyze(self, x, extra_flags=()):
+        """Analyse a whole array (m/s²) as one capture."""
+        self.start()
+        self.feed(x)
+        return self.finish(extra_flags)
+
+
+def _public(ev):
+    keep = ("expected_hz", "found_hz", "amplitude", "snr_db", "harmonics", "searched",
+            "sideband_ratio", "modulation_hz", "spin_hz")
+    return {k: ev[k] for k in keep if k in ev}
