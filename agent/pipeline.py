@@ -34,7 +34,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from agent.dsp.bearing import defect_frequencies_hz
-from agent.dsp.envelope import band_analytic, envelope_amplitude, envelope_power, fast_len, taper_squared
+from agent.dsp.envelope import band_analytic, envelope_amplitude, envelope_power, taper_squared
 from agent.dsp.iso import iso_zone, velocity_band_hz
 from agent.dsp.kurtogram import BandKurtosis, candidate_bands
 from agent.dsp.levels import Moments
@@ -61,6 +61,14 @@ def _pow2_floor(n):
 
 def _pow2_ceil(n):
     return 1 << int(math.ceil(n) - 1).bit_length()
+
+
+def _env_len(nb, env_bins):
+    """Length of the band's inverse FFT: the squared envelope of ``nb`` bins
+    reaches ``nb`` bins; with ``m >= nb + env_bins`` its aliases fold above
+    ``env_bins``, so the analysed part stays clean (and ``m // 2 + 1`` holds
+    ``env_bins``)."""
+    return max(_pow2_ceil(nb + env_bins), _pow2_ceil(2 * env_bins))
 
 
 def plan_segment(fs, capture_s, point):
@@ -200,9 +208,9 @@ class Pipeline:
             self.band_source = "auto"
 
         widest = max(self._band_bins(b)[1] - self._band_bins(b)[0] for b in self.bands)
-        m_max = fast_len(widest)
-        if m_max // 2 + 1 < self.env_bins:
-            m_max = _pow2_ceil(2 * self.env_bins)
+        m_max = _env_len(widest, self.env_bins)
+        # PSD bins needed: the velocity band and the shaft-speed search
+        self.psd_bins = min(self.nbins, int(math.ceil(max(1000.0, 1.6 * fastest) / self.df_hz)) + 2)
 
         # --- work arrays, allocated once -------------------------------------------------
         self._window = hann(self.nperseg)
@@ -210,9 +218,9 @@ class Pipeline:
         self._seg = np.zeros(self.nperseg)
         self._xw = np.empty(self.nperseg)
         self._spec = np.empty(self.nbins, dtype=complex)
-        self._pw = np.empty(self.nbins)
-        self._psd_acc = np.zeros(self.nbins)
-        self._psd = np.empty(self.nbins)
+        self._pw = np.empty(self.psd_bins)
+        self._psd_acc = np.zeros(self.psd_bins)
+        self._psd = np.empty(self.psd_bins)
         self._store = np.empty((LOOKAHEAD_SEGMENTS, self.nbins), dtype=complex)
         self._zwork = np.empty(m_max, dtype=complex)
         self._z = np.empty(m_max, dtype=complex)
@@ -244,8 +252,7 @@ class Pipeline:
         self.band = band
         lo_bin, hi_bin = self._band_bins(band)
         self._lo_bin, self._hi_bin = lo_bin, hi_bin
-        self._m = max(fast_len(hi_bin - lo_bin), _pow2_ceil(2 * self.env_bins))
-        self._m = min(self._m, self._z.shape[0])
+        self._m = min(_env_len(hi_bin - lo_bin, self.env_bins), self._z.shape[0])
         taper_squared(self._m, self._taper)
         self._taper_sum = float(self._taper[:self._m].sum())
 
@@ -292,9 +299,10 @@ class Pipeline:
         np.subtract(seg, float(seg.sum()) / self.nperseg, out=self._xw)
         self._xw *= self._window
         np.fft.rfft(self._xw, out=self._spec)
-        np.multiply(self._spec.real, self._spec.real, out=self._pw)
+        low = self._spec[:self.psd_bins]
+        np.multiply(low.real, low.real, out=self._pw)
         self._psd_acc += self._pw
-        np.multiply(self._spec.imag, self._spec.imag, out=self._pw)
+        np.multiply(low.imag, low.imag, out=self._pw)
         self._psd_acc += self._pw
         self._segments += 1
         if self.band is None:
@@ -359,7 +367,8 @@ class Pipeline:
             psd = self._psd
             np.multiply(self._psd_acc, self._scale / self._segments, out=psd)
             psd[0] *= 0.5
-            psd[-1] *= 0.5
+            if self.psd_bins == self.nbins:
+                psd[-1] *= 0.5
             k_lo = int(math.ceil(self.velocity_band_hz[0] / self.df_hz))
             vel = velocity_rms_mm_s(psd, self.df_hz, *self.velocity_band_hz,
                                     weight=self._vel_weight[:max(psd.shape[0] - k_lo, 0)])
