@@ -216,7 +216,7 @@ def _cmd_record(args):
 
 
 def _cmd_devices(args):
-    from agent.sources.soundcard import devices_report
+    from agent.sources import devices_report
     cfg = _load(args) if args.config else None
     print(devices_report(cfg))
     return EXIT_OK
@@ -226,9 +226,14 @@ def _cmd_calibrate(args):
     from agent.calibration import calibrate
     cfg = _load(args)
     _point(cfg, args.point)
-    result = calibrate(cfg, args.point, args.reference_m_s2, args.reference_hz, args.seconds)
+    try:
+        result = calibrate(cfg, args.point, args.reference_m_s2, args.reference_hz, args.seconds)
+    except ValueError as exc:
+        raise UsageError(str(exc)) from None
     print(result.get("text") or json.dumps(_jsonable(result), indent=2))
-    return EXIT_OK if result.get("ok", True) else EXIT_FAILED
+    if result.get("saved"):
+        print(f"correction written to {result.get('path')} (the configuration file is unchanged)")
+    return EXIT_FAILED if result.get("verdict") == "unreliable" else EXIT_OK
 
 
 def _cmd_baseline(args):

@@ -504,7 +504,7 @@ def _read_source(t, base_dir):
     )
     if kind == "wav" and out.path is None:
         t._bad("path", "", "the WAV file to replay when source.kind = 'wav'")
-    if sim.resonance_hz >= out.sample_rate_hz / 2:
+    if kind == "simulated" and sim.resonance_hz >= out.sample_rate_hz / 2:
         t.problems.append(f"source.simulated.resonance_hz = {sim.resonance_hz:g}: must be below half "
                           f"the sample rate ({out.sample_rate_hz / 2:g} Hz)")
     t.finish()

@@ -121,6 +121,7 @@ class Daemon:
         self.points = []
         self.ready_sent = False
         self.notifier = None
+        self._last_ping = 0.0
         self.config_path = None
         self._lock_file = None
         self._block = None
@@ -215,6 +216,16 @@ class Daemon:
         if self.notifier is not None:
             self.notifier.status(text)
 
+    def _watchdog(self):
+        """Ping the systemd watchdog, at most a few times per interval."""
+        n = self.notifier
+        if n is None or not n.watchdog_interval_s:
+            return
+        now = time.monotonic()
+        if now - self._last_ping >= n.watchdog_interval_s / 4:
+            n.watchdog()
+            self._last_ping = now
+
     def _wait(self, seconds):
         """Wait, pinging the watchdog; returns early when stopping."""
         end = time.monotonic() + seconds
@@ -225,8 +236,7 @@ class Daemon:
             if left <= 0:
                 return
             self.stop_event.wait(min(left, step))
-            if self.notifier is not None:
-                self.notifier.watchdog()
+            self._watchdog()
 
     # ------------------------------------------------------------------ capture
     def capture_cycle(self):
@@ -251,8 +261,7 @@ class Daemon:
                     np.multiply(block[:n, pr.point.channel], pr.scale, out=pr.buf[:n])
                     pr.pipeline.feed(pr.buf[:n])
                 done += n
-                if self.notifier is not None:
-                    self.notifier.watchdog()
+                self._watchdog()
         except SourceError as exc:
             self.health["source"] = str(exc)
             log.error("capture failed: %s", exc)
