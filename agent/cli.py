@@ -210,8 +210,9 @@ def _cmd_record(args):
     cfg = _load(args)
     if args.point is not None:
         _point(cfg, args.point)
-    summary = record(cfg, args.seconds, args.out, args.point)
-    print(summary.get("text") or json.dumps(_jsonable(summary)))
+    s = record(cfg, args.seconds, args.out, args.point)
+    print(f"wrote {s['path']}: {s['seconds']:g} s at {s['sample_rate_hz']} Hz, float32 m/s², "
+          f"one channel per point ({', '.join(s['points'])}); {s['overflows']} overrun(s)")
     return EXIT_OK
 
 
