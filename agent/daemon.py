@@ -122,6 +122,7 @@ class Daemon:
         self.ready_sent = False
         self.notifier = None
         self._last_ping = 0.0
+        self._will_cache = None
         self.config_path = None
         self._lock_file = None
         self._block = None
@@ -171,8 +172,19 @@ class Daemon:
                              cfg.outbox.max_bytes, cfg.outbox.synchronous)
         if cfg.broker.enabled:
             self.link = MqttLink(cfg.broker, cfg.agent.name, cfg.agent.site, self.outbox,
-                                 will_payload=lambda: payloads.encode(self._status_body("offline")))
+                                 will_payload=self._will)
             self.link.start()
+
+    def _will(self):
+        """The offline status: built once for the last will (the link asks before every
+        connection attempt, which must not write to the outbox each time), and anew, with
+        the final counters and a fresh ``seq``, when stopping."""
+        from agent import payloads
+        if self._will_cache is None or self.stop_event.is_set():
+            body = self._status_body("offline")
+            body["seq"] = self.outbox.next_seq(self._topics().status)
+            self._will_cache = payloads.encode(body)
+        return self._will_cache
 
     def _enqueue(self, kind, point, body):
         topics = self._topics()
@@ -199,6 +211,7 @@ class Daemon:
                 self.health["source"] = str(exc)
                 log.warning("source not available (%s); retrying in %.0f s", exc, delay)
                 self._notify_status(f"waiting for the source: {exc}")
+                self._publish_status("online")
                 self._wait(delay)
                 delay = min(delay * 2, SOURCE_RETRY_MAX_S)
         return None
@@ -415,6 +428,7 @@ class Daemon:
         return "; ".join(parts)
 
     def _shutdown(self):
+        self.stop_event.set()
         if self.notifier is not None:
             self.notifier.stopping()
         if self.source is not None:
