@@ -98,9 +98,7 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
             break
         out["searched"] = h
         pk = find_peak(amp, df_hz, target, tol_hz)
-        if pk is None:
-            break
-        if not _is_local_max(amp, pk.bin):
+        if pk is None or not _is_local_max(amp, pk.bin):
             continue
         s = snr_db(pk.amplitude, noise_floor(amp, df_hz, pk.freq_hz, floor_hw))
         if h == 1:
@@ -118,12 +116,59 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
     return out
 
 
+def _explaining_lines(evidence, shaft_hz, skip):
+    """Lines that another defect with a standing fundamental accounts for.
+
+    Each is ``(freq_hz, expected_hz or None)``: the defect's own standing
+    harmonics (with where that defect expects them), and the sidebands its
+    modulation puts beside them (±1x and ±2x for the races, ±FTF for the
+    rolling element), which belong to nobody else.
+    """
+    ftf_hz = evidence["ftf"]["expected_hz"] if "ftf" in evidence else None
+    out = []
+    for k, ev in evidence.items():
+        if k == skip or ev["snr_db"] < FUNDAMENTAL_SNR_DB:
+            continue
+        mods = {"bpfo": (shaft_hz, 2 * shaft_hz), "bpfi": (shaft_hz, 2 * shaft_hz),
+                "bsf": (ftf_hz,) if ftf_hz else ()}.get(k, ())
+        for h, f, _, s in ev["lines"]:
+            if s < HARMONIC_SNR_DB:
+                continue
+            out.append((f, h * ev["expected_hz"]))
+            for m in mods:
+                out += [(f - m, None), (f + m, None)]
+    return out
+
+
+def _cage_comb_hz(evidence):
+    """The cage rate when a rolling-element signature and its cage line both stand out.
+
+    A damaged rolling element carried through the load zone fills the
+    envelope with a comb of cage-rate lines; a race line that falls on that
+    comb cannot be told apart from it.  The rate is taken from the found
+    2xBSF line (more precise than the low FTF line itself).
+    """
+    bsf, ftf = evidence.get("bsf"), evidence.get("ftf")
+    if not bsf or not ftf or bsf["found_hz"] is None:
+        return None
+    if min(bsf["snr_db"], ftf["snr_db"]) < FUNDAMENTAL_SNR_DB:
+        return None
+    return bsf["found_hz"] * ftf["expected_hz"] / bsf["expected_hz"]
+
+
 def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10):
     """Count the harmonics that stand out and are not explained by something else.
 
     A line is *ambiguous* when it lies within two bins of a low shaft
-    harmonic (looseness and rubs put those in the envelope) or of a standing
-    line of another defect whose fundamental stands out.
+    harmonic (looseness and rubs put those in the envelope), on the cage-rate
+    comb of a rolling-element signature (races only), of a sideband
+    of another defect, or of a standing line of another defect whose
+    fundamental stands out -- unless this defect expects that line nearer
+    than the other one does (two defect rates a percent or two apart share
+    their lines; the line goes to the nearer one, not to neither).  Then a
+    sideband ratio is dropped when one of its sidebands is a line of another
+    defect that qualifies as present: it measures that defect, not a
+    modulation.
 
     Parameters
     ----------
@@ -136,15 +181,21 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10):
     max_shaft_order : int, default 10
     """
     guard = 2.0 * df_hz
-    strong = {k: [ln[1] for ln in ev["lines"] if ln[3] >= HARMONIC_SNR_DB]
-              for k, ev in evidence.items() if ev["snr_db"] >= FUNDAMENTAL_SNR_DB}
+    cage_hz = _cage_comb_hz(evidence)
     for key, ev in evidence.items():
-        others = [f for k, fs in strong.items() if k != key for f in fs]
+        others = _explaining_lines(evidence, shaft_hz, key)
         count, best, fund_amb = 0, 0.0, ev["found_hz"] is None
         for h, f, _, s in ev["lines"]:
             k = round(f / shaft_hz)
-            amb = (1 <= k <= max_shaft_order and abs(f - k * shaft_hz) <= guard) or any(
-                abs(f - o) <= guard for o in others)
+            amb = 1 <= k <= max_shaft_order and abs(f - k * shaft_hz) <= guard
+            if cage_hz and key in ("bpfo", "bpfi"):
+                j = round(f / cage_hz)
+                amb = amb or (j >= 1 and abs(f - j * cage_hz) <= guard)
+            mine = abs(f - h * ev["expected_hz"])
+            for fo, expected in others:
+                if abs(f - fo) <= guard and (expected is None or abs(f - expected) <= mine):
+                    amb = True
+                    break
             if h == 1:
                 fund_amb = amb
             if amb:
@@ -154,6 +205,17 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10):
             if h <= 3:
                 best = max(best, s)
         ev.update(harmonics=count, peak_snr_db=best, fundamental_ambiguous=fund_amb)
+    present = [k for k, ev in evidence.items() if _present(ev)]
+    for key in present:
+        ev = evidence[key]
+        if ev["sideband_ratio"] is None or not ev["modulation_hz"]:
+            continue
+        lines = [f for k in present if k != key for _, f, _, s in evidence[k]["lines"]
+                 if s >= HARMONIC_SNR_DB]
+        fc, fm = ev["found_hz"], ev["modulation_hz"]
+        if any(abs(f - (fc - fm)) <= guard or abs(f - (fc + fm)) <= guard for f in lines):
+            ev["sideband_ratio"] = None
+            ev["sideband_snr_db"] = None
     return evidence
 
 

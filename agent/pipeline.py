@@ -227,10 +227,11 @@ class Pipeline:
         self._sq = np.empty(m_max)
         self._tmp = np.empty(m_max)
         self._espec = np.empty(m_max // 2 + 1, dtype=complex)
-        self._taper = np.empty(m_max)
+        self._tapers = {}
         self._env_acc = np.zeros(self.env_bins)
         self._env_amp = np.empty(self.env_bins)
         self._env_freqs = np.arange(self.env_bins) * self.df_hz
+        self._env_freqs.flags.writeable = False
         self._moments = Moments(MAX_BLOCK)
         self._gate = QualityGate(MAX_BLOCK, full_scale_m_s2)
         self._kurt = BandKurtosis(fs, self.nperseg, self.bands) if self.band_source == "auto" else None
@@ -252,9 +253,12 @@ class Pipeline:
         self.band = band
         lo_bin, hi_bin = self._band_bins(band)
         self._lo_bin, self._hi_bin = lo_bin, hi_bin
-        self._m = min(_env_len(hi_bin - lo_bin, self.env_bins), self._z.shape[0])
-        taper_squared(self._m, self._taper)
-        self._taper_sum = float(self._taper[:self._m].sum())
+        m = min(_env_len(hi_bin - lo_bin, self.env_bins), self._z.shape[0])
+        self._m = m
+        if m not in self._tapers:  # once per distinct length (a handful at most)
+            self._tapers[m] = taper_squared(m, np.empty(m))
+        self._taper = self._tapers[m]
+        self._taper_sum = float(self._taper.sum())
 
     # ------------------------------------------------------------------ streaming
     def start(self):
@@ -276,7 +280,10 @@ class Pipeline:
 
     def feed(self, block):
         """Stream a block of acceleration samples (1-D, m/s²) into the capture."""
-        block = np.asarray(block, dtype=float)
+        with np.errstate(invalid="ignore", over="ignore"):  # NaN/inf: flagged by the gate
+            self._feed(np.asarray(block, dtype=float))
+
+    def _feed(self, block):
         if block.ndim != 1:
             raise ValueError(f"block must be 1-D, got shape {block.shape}")
         pos = 0
@@ -331,6 +338,11 @@ class Pipeline:
 
     # ------------------------------------------------------------------ result
     def finish(self, extra_flags=()):
+        """End the capture and compute the :class:`Analysis` (see :meth:`_finish`)."""
+        with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+            return self._finish(extra_flags)
+
+    def _finish(self, extra_flags=()):
         """End the capture and compute the :class:`Analysis`.
 
         Parameters
@@ -379,7 +391,7 @@ class Pipeline:
                 amp = envelope_amplitude(self._env_acc, self._env_segments, self._taper_sum,
                                          self._env_amp)
                 defects = self._defects(amp, shaft_hz)
-                spectrum = (self._env_freqs, amp)
+                spectrum = (self._env_freqs, amp.copy())  # the result outlives this capture
         findings = judge(defects, flagged=bool(flags)) if defects else []
         return Analysis(
             point=p.name,

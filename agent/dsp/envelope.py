@@ -96,9 +96,11 @@ def taper_squared(m, out):
     what the envelope spectrum is computed with.
     """
     v = out[:m]
-    np.multiply(np.arange(m, dtype=float), 2.0 * np.pi / m, out=v)
+    k = np.arange(m, dtype=float)
+    np.multiply(k, 2.0 * np.pi / m, out=v)
     np.cos(v, out=v)
-    np.subtract(0.5, 0.5 * v, out=v)
+    v *= -0.5
+    v += 0.5
     np.multiply(v, v, out=v)
     return v
 

@@ -58,7 +58,9 @@ def find_peak(amp, df_hz, target_hz, tol_hz, min_half_bins=1.5):
     Returns
     -------
     Peak or None
-        ``None`` when the window lies outside the spectrum.  The frequency is
+        ``None`` when the window lies outside the spectrum, or when the
+        largest bin is the flank of a line outside the window (its
+        interpolated frequency falls outside).  The frequency is
         refined by fitting a parabola through the peak bin and its neighbours;
         the amplitude is the peak bin's value (no scalloping correction).
     """
@@ -73,7 +75,10 @@ def find_peak(amp, df_hz, target_hz, tol_hz, min_half_bins=1.5):
         denom = a - 2.0 * b + c
         if denom < 0:
             offset = min(max(0.5 * (a - c) / denom, -0.5), 0.5)
-    return Peak((k + offset) * df_hz, float(amp[k]), k)
+    freq_hz = (k + offset) * df_hz
+    if abs(freq_hz - target_hz) > max(tol_hz, min_half_bins * df_hz):
+        return None  # the window's edge holds the flank of a neighbouring line
+    return Peak(freq_hz, float(amp[k]), k)
 
 
 def noise_floor(amp, df_hz, center_hz, half_width_hz, guard_bins=3):
@@ -144,9 +149,18 @@ def sideband_ratio(amp, df_hz, carrier_hz, modulation_hz, tol_hz):
     """
     if not modulation_hz > 0:
         raise ValueError(f"{modulation_hz=} must be positive")
-    c = find_peak(amp, df_hz, carrier_hz, tol_hz)
-    lo = find_peak(amp, df_hz, carrier_hz - modulation_hz, tol_hz)
-    hi = find_peak(amp, df_hz, carrier_hz + modulation_hz, tol_hz)
-    if c is None or lo is None or hi is None or carrier_hz - modulation_hz <= 0 or c.amplitude <= 0:
+    n = amp.shape[0]
+    lo_hz, hi_hz = carrier_hz - modulation_hz, carrier_hz + modulation_hz
+    if lo_hz <= 0 or hi_hz + tol_hz >= n * df_hz:
         return math.nan, math.nan, math.nan
-    return (lo.amplitude + hi.amplitude) / c.amplitude, lo.amplitude, hi.amplitude
+    c = find_peak(amp, df_hz, carrier_hz, tol_hz)
+    if c is None or c.amplitude <= 0:
+        return math.nan, math.nan, math.nan
+
+    def side(f_hz):
+        pk = find_peak(amp, df_hz, f_hz, tol_hz)
+        # no line there: the spectrum's own level at that frequency
+        return pk.amplitude if pk is not None else float(amp[int(round(f_hz / df_hz))])
+
+    lower, upper = side(lo_hz), side(hi_hz)
+    return (lower + upper) / c.amplitude, lower, upper

@@ -89,7 +89,7 @@ def welch_psd(x, fs, nperseg, window=None):
     if nperseg < 2 or nperseg > x.size:
         raise ValueError(f"{nperseg=} must be in [2, len(x)={x.size}]")
     w = hann(nperseg) if window is None else window
-    hop = nperseg // 2
+    hop = nperseg - nperseg // 2  # scipy's default noverlap = nperseg // 2
     acc = np.zeros(nperseg // 2 + 1)
     count = 0
     for start in range(0, x.size - nperseg + 1, hop):
