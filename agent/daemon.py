@@ -172,8 +172,13 @@ class Daemon:
                              cfg.outbox.max_bytes, cfg.outbox.synchronous)
         if cfg.broker.enabled:
             self.link = MqttLink(cfg.broker, cfg.agent.name, cfg.agent.site, self.outbox,
-                                 will_payload=self._will)
+                                 will_payload=self._will, on_state=self._on_link_state)
             self.link.start()
+
+    def _on_link_state(self, state):
+        """After every (re)connection, replace a retained offline will at once."""
+        if state == "connected" and not self.stop_event.is_set():
+            self.link.publish_now(self._topics().status, self._status_body("online"))
 
     def _will(self):
         """The offline status: built once for the last will (the link asks before every
@@ -374,8 +379,10 @@ class Daemon:
             return 1
         self._lock_file = acquire_state_lock(cfg.agent.state_dir)
         if self._lock_file is None:
-            log.error("another ballpass daemon uses %s; refusing to start a second one",
-                      cfg.agent.state_dir)
+            from agent.selftest import lock_holder_pid
+            pid = lock_holder_pid(cfg.agent.state_dir)
+            log.error("another ballpass process%s uses %s; refusing to start a second daemon",
+                      f" (pid {pid})" if pid else "", cfg.agent.state_dir)
             return 1
         try:
             self._open_delivery()
