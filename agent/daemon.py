@@ -67,6 +67,20 @@ def setup_logging(level="info"):
     root.setLevel(getattr(logging, level.upper(), logging.INFO))
 
 
+#: Sources whose samples arrive at the pace of a converter clock: their rate is checked.
+DEVICE_PACED = ("soundcard", "iio")
+#: Relative deviation of the measured sample rate that flags a capture "wrong_rate".
+RATE_TOLERANCE = 0.05
+
+
+def _measured_rate(frames, elapsed_s, sample_rate_hz):
+    """Samples per second over the part of a capture after the device's backlog, or
+    None when that part should last under half a second (too short to judge)."""
+    if frames / sample_rate_hz < 0.5:
+        return None
+    return frames / max(elapsed_s, 1e-6)
+
+
 def _rss_mb():
     try:
         with open("/proc/self/statm", "rb") as f:
@@ -270,6 +284,8 @@ class Daemon:
             pr.pipeline.start()
         t_capture = time.time()
         done = 0
+        lead_frames = frames_wanted // 10  # what the device had buffered arrives at once
+        t_lead = None
         try:
             while done < frames_wanted and not self.stop_event.is_set():
                 n = src.read(block[:min(BLOCK_FRAMES, frames_wanted - done)])
@@ -279,6 +295,8 @@ class Daemon:
                     np.multiply(block[:n, pr.point.channel], pr.scale, out=pr.buf[:n])
                     pr.pipeline.feed(pr.buf[:n])
                 done += n
+                if t_lead is None and done >= lead_frames:
+                    t_lead, lead_done = time.monotonic(), done
                 self._watchdog()
         except SourceError as exc:
             self.health["source"] = str(exc)
@@ -287,7 +305,13 @@ class Daemon:
         if self.stop_event.is_set() and done < frames_wanted:
             return True  # abandoned on a signal; nothing to publish
         overruns = src.overflows - overflows_before
-        flags = ("overrun",) if overruns else ()
+        flags = ["overrun"] if overruns else []
+        if src.kind in DEVICE_PACED and t_lead is not None:
+            rate = _measured_rate(done - lead_done, time.monotonic() - t_lead, src.sample_rate_hz)
+            if rate is not None and abs(rate / src.sample_rate_hz - 1.0) > RATE_TOLERANCE:
+                flags.append("wrong_rate")
+                log.warning("the input delivered %.0f samples/s, not the configured %d: capture "
+                            "flagged", rate, src.sample_rate_hz)
         self.health["overruns"] += overruns
         t0 = time.perf_counter()
         for pr in self.points:
