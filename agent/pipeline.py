@@ -291,8 +291,9 @@ class Pipeline:
         while pos < n:
             take = min(n - pos, MAX_BLOCK, self.nperseg - self._fill)
             part = block[pos:pos + take]
-            self._moments.add(part)
-            self._gate.add(part)
+            mom = self._moments
+            mom.add(part)
+            self._gate.add(part, mom.last_sum, mom.last_min, mom.last_max)
             self._seg[self._fill:self._fill + take] = part
             self._fill += take
             pos += take

@@ -61,9 +61,16 @@ class Moments:
         self.m4 = 0.0
         self.min = math.inf
         self.max = -math.inf
+        self.last_sum = 0.0
+        self.last_min = self.last_max = 0.0
 
     def add(self, x):
-        """Merge a block of samples (1-D float array) into the moments."""
+        """Merge a block of samples (1-D float array) into the moments.
+
+        The block's sum, minimum and maximum stay available as ``last_sum``,
+        ``last_min`` and ``last_max`` for checks that need them (the quality
+        gate), so that nobody passes over the block again for them.
+        """
         nb = x.shape[0]
         if nb == 0:
             return
@@ -71,13 +78,15 @@ class Moments:
             raise ValueError(f"block of {nb} samples is longer than max_block={self._scratch.shape[0]}")
         d = self._scratch[:nb]
         d2 = self._scratch2[:nb]
-        mean_b = float(x.sum()) / nb
+        self.last_sum = float(x.sum())
+        mean_b = self.last_sum / nb
         np.subtract(x, mean_b, out=d)
+        m2_b = float(np.dot(d, d))
         np.multiply(d, d, out=d2)
-        m2_b = float(d2.sum())
         m4_b = float(np.dot(d2, d2))
         m3_b = float(np.dot(d2, d))
         lo, hi = float(x.min()), float(x.max())
+        self.last_min, self.last_max = lo, hi
         self.min = min(self.min, lo)
         self.max = max(self.max, hi)
 

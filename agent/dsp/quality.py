@@ -58,6 +58,7 @@ class QualityGate:
             raise ValueError(f"{full_scale_m_s2=} must be positive or None")
         self.full_scale_m_s2 = full_scale_m_s2
         self._abs = np.empty(max_block)
+        self._mask = np.empty(max_block, dtype=bool)
         self.reset()
 
     def reset(self):
@@ -68,25 +69,47 @@ class QualityGate:
         self.extreme = 0.0
         self.at_extreme = 0
 
-    def add(self, x):
-        """Inspect a block of samples in m/s²."""
+    def add(self, x, block_sum=None, block_min=None, block_max=None):
+        """Inspect a block of samples in m/s².
+
+        Parameters
+        ----------
+        x : ndarray
+            The block.
+        block_sum, block_min, block_max : float, optional
+            The block's sum, minimum and maximum when the caller has them
+            already (:class:`~agent.dsp.levels.Moments` does): the block is
+            then only read again when it reaches full scale or its running
+            extreme, which is rare.
+        """
         nb = x.shape[0]
         if nb == 0:
             return
         self.n += nb
-        if not math.isfinite(float(x.sum())):
+        total = float(x.sum()) if block_sum is None else block_sum
+        if not math.isfinite(total):
             self.nonfinite = True
             return
+        if block_min is None:
+            block_min, block_max = float(x.min()), float(x.max())
+        peak = max(-block_min, block_max)
+        fs = self.full_scale_m_s2
+        near_fs = fs is not None and peak >= 0.999 * fs
+        if peak < self.extreme and not near_fs:
+            return
         a = self._abs[:nb]
+        mask = self._mask[:nb]
         np.abs(x, out=a)
-        peak = float(a.max())
-        if self.full_scale_m_s2 is not None:
-            self.at_full_scale += int(np.count_nonzero(a >= 0.999 * self.full_scale_m_s2))
-        if peak > self.extreme:
-            self.extreme = peak
-            self.at_extreme = int(np.count_nonzero(a == peak))
-        elif peak == self.extreme:
-            self.at_extreme += int(np.count_nonzero(a == peak))
+        if near_fs:
+            np.greater_equal(a, 0.999 * fs, out=mask)
+            self.at_full_scale += int(np.count_nonzero(mask))
+        if peak >= self.extreme:
+            np.equal(a, peak, out=mask)
+            count = int(np.count_nonzero(mask))
+            if peak > self.extreme:
+                self.extreme, self.at_extreme = peak, count
+            else:
+                self.at_extreme += count
 
     def flags(self, mean, rms, peak_to_peak, min_samples):
         """Flags of the capture.
