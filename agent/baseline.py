@@ -34,9 +34,10 @@ import logging
 import math
 import os
 import statistics
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
+
+from agent.atomic import write_text_atomic
 
 __all__ = ["Baseline", "BaselineStore", "reset_baselines", "BASELINE_INDICATORS",
            "DEFECT_KEYS"]
@@ -233,23 +234,8 @@ class BaselineStore:
     def _write(self, point):
         rec = self._records[point]
         path = self.path_for(point)
-        self.folder.mkdir(parents=True, exist_ok=True)
         text = json.dumps(rec.to_json(point), separators=(",", ":"), sort_keys=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{point}.", suffix=".tmp", dir=self.folder)
-        try:
-            with os.fdopen(fd, "w", encoding="utf-8") as fh:
-                fh.write(text)
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.replace(tmp, path)
-        except BaseException:
-            Path(tmp).unlink(missing_ok=True)
-            raise
-        dir_fd = os.open(self.folder, os.O_RDONLY)
-        try:
-            os.fsync(dir_fd)
-        finally:
-            os.close(dir_fd)
+        write_text_atomic(path, text)
         self._stamps[point] = _stamp(path)
 
     # --------------------------------------------------------------- baseline

@@ -23,16 +23,14 @@ into acceleration.
 
 from __future__ import annotations
 
-import contextlib
 import json
 import math
-import os
-import tempfile
 from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
 
+from agent.atomic import write_text_atomic
 from agent.errors import ConfigError
 
 __all__ = ["scale_m_s2_per_unit", "measure_sensitivity", "calibrate", "load_overrides",
@@ -281,18 +279,7 @@ def _write_document(state_dir, doc):
     path = overrides_path(state_dir)
     data = json.dumps(doc, indent=2, sort_keys=True) + "\n"
     try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=".calibration.", suffix=".tmp", dir=path.parent)
-        try:
-            with os.fdopen(fd, "w", encoding="utf-8") as fh:
-                fh.write(data)
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.replace(tmp, path)
-        except BaseException:
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(tmp)
-            raise
+        write_text_atomic(path, data)
     except OSError as exc:
         raise ConfigError([f"{path}: cannot write: {exc.strerror or exc}"]) from exc
     return path

@@ -178,7 +178,6 @@ class Daemon:
                                health=self.health)
 
     def _open_delivery(self):
-        from agent import payloads
         from agent.mqtt import MqttLink
         from agent.outbox import Outbox
         cfg = self.config

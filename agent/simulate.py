@@ -419,7 +419,7 @@ class BearingSimulator:
 
     def _generate_frame(self):
         model = self.model
-        frame, length = self._frame, self._ring_len
+        frame = self._frame
         work = self._work
         if self._shift_pending:
             tail = work.shape[0] - frame

@@ -12,7 +12,6 @@ import time
 from pathlib import Path
 
 import jsonschema
-import pytest
 
 from agent.payloads import load_schema
 from broker import Subscriber, free_port, wait_until
