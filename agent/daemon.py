@@ -260,8 +260,8 @@ class Daemon:
     def _wait(self, seconds):
         """Wait, pinging the watchdog; returns early when stopping."""
         end = time.monotonic() + seconds
-        step = self.notifier.watchdog_interval_s if self.notifier and \
-            self.notifier.watchdog_interval_s else 5.0
+        interval = self.notifier.watchdog_interval_s if self.notifier else None
+        step = interval / 2 if interval else 5.0
         while not self.stop_event.is_set():
             left = end - time.monotonic()
             if left <= 0:
