@@ -189,9 +189,11 @@ class Daemon:
             self.link.start()
 
     def _on_link_state(self, state):
-        """After every (re)connection, replace a retained offline will at once."""
-        if state == "connected" and not self.stop_event.is_set():
-            self.link.publish_now(self._topics().status, self._status_body("online"))
+        """After every (re)connection, queue a fresh online status to replace a retained
+        offline will.  It goes through the outbox (which keeps only the newest status), so
+        status messages stay in ``seq`` order."""
+        if state == "connected" and not self.stop_event.is_set() and self.outbox is not None:
+            self._publish_status("online")
 
     def _will(self):
         """The offline status: built once for the last will (the link asks before every

@@ -68,7 +68,7 @@ def main():
     dash = None
     if not args.no_dashboard:
         dash = subprocess.Popen([sys.executable, str(ROOT / "tools" / "dashboard"), "--config",
-                                 str(cfg)], cwd=ROOT)
+                                 str(cfg), "--spectrum", "raw-water-pump-2-de"], cwd=ROOT)
         procs.append(dash)
     try:
         start = time.monotonic()
