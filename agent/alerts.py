@@ -50,6 +50,7 @@ from dataclasses import dataclass, field
 
 from agent.baseline import DEFECT_KEYS
 from agent.dsp.iso import zone_limits_mm_s
+from agent.safety import CAUTION
 
 __all__ = ["STATES", "NORMAL", "WATCH", "ACT", "CAUTION", "AlertChange", "AlertEngine",
            "state_rank", "DEFECT_NAMES"]
@@ -60,10 +61,6 @@ _RANK = {s: i for i, s in enumerate(STATES)}
 _ZONE_LEVEL = {"A": 0, "B": 0, "C": 1, "D": 2}
 _MIN_ACT_HARMONICS = 3
 
-CAUTION = ("Automated screening result, not a diagnosis: a qualified vibration analyst "
-           "should confirm it before any action is taken. Follow lock-out/tag-out and "
-           "guarding rules before anyone works on the machine. Local codes and licensed "
-           "practice take precedence.")
 
 #: defect key -> (plain name of the damaged part, frequency label)
 DEFECT_NAMES = {

@@ -33,7 +33,7 @@ import numpy as np
 from agent.atomic import write_text_atomic
 from agent.errors import ConfigError
 
-__all__ = ["scale_m_s2_per_unit", "measure_sensitivity", "calibrate", "load_overrides",
+__all__ = ["scale_m_s2_per_unit", "input_scaling", "measure_sensitivity", "calibrate", "load_overrides",
            "save_override", "clear_override", "overrides_path", "effective_sensitivity",
            "CALIBRATION_FILE", "TOLERANCE"]
 
@@ -88,6 +88,26 @@ def scale_m_s2_per_unit(point, source_unit, override=None):
     if source_unit == "volt":
         return 1000.0 / sens
     raise ValueError(f"{source_unit=} must be one of 'full_scale', 'volt', 'm_s2'")
+
+
+def input_scaling(point, source_unit, override=None):
+    """Scale to m/s² and the converter's full scale in m/s², for one point.
+
+    Parameters
+    ----------
+    point, source_unit, override
+        As for :func:`scale_m_s2_per_unit`.
+
+    Returns
+    -------
+    scale : float
+        m/s² per source unit.
+    full_scale_m_s2 : float or None
+        Known only for digital ±1.0 samples (the clipping check uses it);
+        ``None`` for volts and m/s², where clipping shows as a flat top.
+    """
+    scale = scale_m_s2_per_unit(point, source_unit, override)
+    return scale, (scale if source_unit == "full_scale" else None)
 
 
 # --------------------------------------------------------------------------- measure

@@ -95,12 +95,11 @@ class _PointRuntime:
 
     def __init__(self, point, config, source, overrides, baseline_store):
         from agent.alerts import AlertEngine
-        from agent.calibration import scale_m_s2_per_unit
+        from agent.calibration import input_scaling
         from agent.pipeline import Pipeline
 
         self.point = point
-        self.scale = scale_m_s2_per_unit(point, source.unit, overrides.get(point.name))
-        full_scale = self.scale if source.unit == "full_scale" else None
+        self.scale, full_scale = input_scaling(point, source.unit, overrides.get(point.name))
         self.pipeline = Pipeline(point, source.sample_rate_hz, config.schedule.capture_s,
                                  full_scale_m_s2=full_scale,
                                  lowest_trusted_hz=config.source.lowest_trusted_hz)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from agent.calibration import input_scaling
 from agent.errors import UsageError
 from agent.pipeline import Pipeline
 from agent.simulate import BearingSimulator, MachineModel
@@ -60,12 +61,8 @@ def analyze_wav(path, config, point_name=None, calibration_mv_per_m_s2=None):
         if channel >= info.channels:
             raise UsageError(f"{path}: has {info.channels} channel(s); point {point.name!r} "
                              f"reads channel {point.channel}")
-        if info.is_float:
-            scale, full_scale = 1.0, None
-        else:
-            sens = calibration_mv_per_m_s2 or point.sensitivity_mv_per_m_s2
-            scale = point.full_scale_v * 1000.0 / sens
-            full_scale = scale
+        scale, full_scale = input_scaling(point, "m_s2" if info.is_float else "full_scale",
+                                          calibration_mv_per_m_s2)
         try:
             pipe = Pipeline(point, info.sample_rate_hz, max(info.duration_s, 1e-3),
                             full_scale_m_s2=full_scale,
@@ -91,7 +88,8 @@ def machine_model(point, fault="outer", modulation="none", impact_m_s2=None,
     ``fault`` is ``"none"``, ``"outer"``, ``"inner"``, ``"rolling"`` or a
     ``+``-joined combination such as ``"outer+inner"``.
     """
-    faults = frozenset() if fault in ("none", "", None) else frozenset(fault.split("+"))
+    from agent.sources.simulated import fault_set
+    faults = fault_set(fault)
     kwargs = {}
     if impact_m_s2 is not None:
         kwargs["impact_m_s2"] = impact_m_s2

@@ -48,6 +48,8 @@ from importlib import resources
 
 import numpy as np
 
+from agent.safety import CAUTION
+
 __all__ = [
     "result", "alert", "spectrum", "status", "encode", "round_sig", "utc_timestamp",
     "load_schema", "schema_id", "KINDS", "ALERT_STATES", "QUALITY_FLAGS", "DEFECTS",
@@ -69,8 +71,6 @@ RESULT_MAX_BYTES = 1023
 SPECTRUM_BINS = 300
 SPECTRUM_UNIT = "(m/s²)²"
 SIG_DIGITS = 3
-CAUTION = ("A qualified vibration analyst should confirm this before any action on the "
-           "machine; lock out and tag out the machine before anyone touches it.")
 
 _LEVEL_KEYS = ("accel_rms_m_s2", "accel_peak_m_s2", "crest_factor", "kurtosis",
                "velocity_rms_mm_s")

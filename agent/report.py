@@ -8,14 +8,13 @@
 
 from __future__ import annotations
 
+import textwrap
+
 from agent.findings import DEFECTS
+from agent.safety import CAUTION
 
 __all__ = ["CAUTION", "table", "analysis_report", "bearing_report"]
 
-CAUTION = ("ballpass is an automated screening aid, not a diagnosis: a qualified vibration "
-           "analyst should confirm any finding before action. Follow lock-out/tag-out and "
-           "guarding rules before anyone works on or near the machine; local codes and "
-           "licensed practice take precedence.")
 
 _FLAG_WORDS = {
     "nonfinite": "invalid samples (NaN or infinity)",
@@ -113,20 +112,8 @@ def analysis_report(d, source=""):
         out.append(f"  * {f['text']}")
     if d.get("summary"):
         out.append(f"  {d['summary']}")
-    out += ["", _wrap(CAUTION)]
+    out += ["", textwrap.fill(CAUTION, 88)]
     return "\n".join(out)
-
-
-def _wrap(text, width=88):
-    words, lines, cur = text.split(), [], ""
-    for wd in words:
-        if len(cur) + len(wd) + 1 > width:
-            lines.append(cur)
-            cur = wd
-        else:
-            cur = f"{cur} {wd}".strip()
-    lines.append(cur)
-    return "\n".join(lines)
 
 
 def bearing_report(geometry, orders, freqs_hz=None):

@@ -500,16 +500,14 @@ def capture_points(config, source, seconds):
     dict
         ``{point_name: (Analysis, mean_m_s2, full_scale_m_s2, overruns)}``.
     """
-    from agent.calibration import load_overrides, scale_m_s2_per_unit
+    from agent.calibration import input_scaling, load_overrides
     from agent.pipeline import Pipeline
 
     fs = source.sample_rate_hz
     overrides = load_overrides(config.agent.state_dir)
     caps = []
     for p in config.points:
-        scale = scale_m_s2_per_unit(p, source.unit, overrides.get(p.name))
-        # as the daemon does: the converter's full scale is known for digital +-1.0 samples
-        full_scale = scale if source.unit == "full_scale" else None
+        scale, full_scale = input_scaling(p, source.unit, overrides.get(p.name))
         pipe = Pipeline(p, fs, seconds, full_scale_m_s2=full_scale,
                         lowest_trusted_hz=config.source.lowest_trusted_hz)
         caps.append(_PointCapture(p, pipe, scale, full_scale))

@@ -23,7 +23,7 @@ import scipy.stats
 
 from agent.config import parse_config
 from agent.dsp.bearing import DefectOrders, defect_frequencies_hz, defect_orders
-from agent.dsp.envelope import band_analytic, fast_len
+from agent.dsp.envelope import band_analytic
 from agent.dsp.iso import iso_zone, velocity_band_hz, zone_limits_mm_s
 from agent.dsp.kurtogram import BandKurtosis, candidate_bands
 from agent.dsp.levels import Moments, crest_factor, kurtosis, rms
@@ -46,6 +46,11 @@ def make_point(machine=None, bearing=None, envelope=None):
     if envelope:
         table["envelope"] = envelope
     return parse_config({"point": [table]}).points[0]
+
+
+def _band_len(nb):
+    """Inverse-FFT length with room for the squared envelope: a power of two >= 2 nb."""
+    return 1 << int(2 * nb - 1).bit_length()
 
 
 def tone(freq_hz, amplitude, seconds, fs=FS_HZ, phase=0.3):
@@ -322,7 +327,7 @@ def test_band_analytic_equals_scipy_hilbert_on_bin_centred_signal():
                + 0.3 * np.cos(2 * np.pi * (fc + 100 * df) * t + 0.2))
     out_band = 2.0 * np.cos(2 * np.pi * 20 * df * t)     # far below the band
     lo_bin, hi_bin = 400, 600
-    mlen = fast_len(hi_bin - lo_bin)
+    mlen = _band_len(hi_bin - lo_bin)
     z = band_analytic(np.fft.rfft(in_band + out_band), n, lo_bin, hi_bin,
                       np.empty(mlen, complex), np.empty(mlen, complex))
     ref = np.abs(scipy.signal.hilbert(in_band))[::n // mlen]
@@ -350,7 +355,7 @@ def test_band_analytic_matches_scipy_hilbert_mid_segment():
     s0 = 3 * n // 2
     df = FS_HZ / n
     lo_bin, hi_bin = int(2000.0 / df), int(4000.0 / df)
-    mlen = fast_len(hi_bin - lo_bin)
+    mlen = _band_len(hi_bin - lo_bin)
     z = band_analytic(np.fft.rfft(x[s0:s0 + n]), n, lo_bin, hi_bin,
                       np.empty(mlen, complex), np.empty(mlen, complex))
     ref_sq = np.abs(analytic[s0:s0 + n:n // mlen]) ** 2

@@ -289,7 +289,7 @@ def test_alert_from_plain_fields(tmp_path):
                                  "limit_kind": "iso_zone",
                                  "text": "Velocity 7.12 mm/s is in ISO 20816 zone C (above 4.5 mm/s)."}
     assert msg["reasons"][1]["value"] == 21.4
-    assert "lock out" in msg["caution"] and "analyst" in msg["caution"]
+    assert "lock-out/tag-out" in msg["caution"] and "analyst" in msg["caution"]
     with pytest.raises(ValueError):
         payloads.alert(agent=AGENT, site=SITE, point=POINT, state="alarm", previous="normal",
                        reasons=[], text="")

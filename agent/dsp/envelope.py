@@ -6,7 +6,6 @@ analytic signal of the band-passed segment, already decimated.  Its squared
 magnitude is the squared envelope, whose spectrum shows the repetition rate of
 the impacts (the defect frequency) and its harmonics.
 
-- :func:`fast_len`: the FFT length used for a band of ``nb`` bins.
 - :func:`band_analytic`: analytic signal of one band of a segment spectrum.
 - :func:`taper_squared`: the taper that the segment window leaves on the
   squared envelope (``hann**2`` on the decimated grid).
@@ -32,18 +31,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["fast_len", "band_analytic", "taper_squared", "envelope_power", "envelope_amplitude"]
-
-
-def fast_len(nb):
-    """Smallest power of two >= ``2 * nb``.
-
-    Twice the band width leaves room for the squared envelope, whose spectrum
-    reaches as far as the band is wide, without aliasing.
-    """
-    if nb < 1:
-        raise ValueError(f"{nb=} must be >= 1")
-    return 1 << int(2 * nb - 1).bit_length()
+__all__ = ["band_analytic", "taper_squared", "envelope_power", "envelope_amplitude"]
 
 
 def band_analytic(spectrum, nperseg, lo_bin, hi_bin, work, out):
