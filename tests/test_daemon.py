@@ -56,6 +56,12 @@ def start_daemon(config, *args, env=None, log=None):
                             cwd=ROOT)
 
 
+def stop_cleanly(proc):
+    """SIGTERM: the daemon must flush and exit 0 within a few seconds."""
+    proc.send_signal(signal.SIGTERM)
+    assert proc.wait(timeout=15) == 0
+
+
 def results(sub, point):
     return [json.loads(p) for t, p, _ in sub.messages if t == f"{PREFIX}/points/{point}/result"]
 
@@ -70,8 +76,7 @@ def test_results_validate_notify_and_clean_stop(tmp_path, broker):
     proc = start_daemon(cfg, env={"NOTIFY_SOCKET": str(sock_path), "WATCHDOG_USEC": "2000000"})
     try:
         assert sub.wait_for(lambda m: len(results(sub, "pump-nde")) >= 3, 60)
-        proc.send_signal(signal.SIGTERM)
-        assert proc.wait(timeout=15) == 0
+        stop_cleanly(proc)
     finally:
         if proc.poll() is None:
             proc.kill()
@@ -127,8 +132,7 @@ def test_sighup_reload_bad_config_keeps_running(tmp_path, broker):
         cfg.write_text(good)
         proc.send_signal(signal.SIGHUP)
         assert wait_until(lambda: "configuration reloaded" in (tmp_path / "daemon.log").read_text(), 20)
-        proc.send_signal(signal.SIGTERM)
-        assert proc.wait(timeout=15) == 0
+        stop_cleanly(proc)
     finally:
         if proc.poll() is None:
             proc.kill()
@@ -193,8 +197,7 @@ def test_missing_source_is_retried_and_capture_resumes(tmp_path, broker):
         write_simulation(tmp, machine_model(point, "outer", "none"), 25600, 3.0, seed=1)
         tmp.rename(wav)  # the device "comes back"
         assert sub.wait_for(lambda m: len(results(sub, "fan-1")) >= 1, 30)
-        proc.send_signal(signal.SIGTERM)
-        assert proc.wait(timeout=15) == 0
+        stop_cleanly(proc)
     finally:
         if proc.poll() is None:
             proc.kill()
