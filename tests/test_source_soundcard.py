@@ -74,7 +74,7 @@ def test_int16_stream_delivers_the_file_bit_exact_in_full_scale_units(rig):
     assert out["got"] == 30000 and out["unit"] == "full_scale"
     assert out["desc"]["device"] == "larkspur_rig_s16" and out["desc"]["hostapi"] == "ALSA"
     got = np.load(d / "s16_out.npy")
-    expected = rig["s16"][:30000] / 32768.0  # int16 full scale is 2**15
+    expected = rig["s16"][:30000] / 32768.0  # int16 full scale is 2**15 (common practice: PCM scaling)
     np.testing.assert_array_equal(got, expected)
 
 
@@ -95,7 +95,7 @@ def test_int32_stream_delivers_the_file_bit_exact_in_full_scale_units(rig):
     """, rig["conf"])
     assert out["got"] == 20000
     got = np.load(d / "s32_out.npy")
-    np.testing.assert_array_equal(got, rig["s32"][:20000] / 2.0**31)
+    np.testing.assert_array_equal(got, rig["s32"][:20000] / 2.0**31)  # int32 full scale is 2**31 (common practice)
 
 
 def test_record_writes_calibrated_m_s2_with_the_stored_override(rig):
