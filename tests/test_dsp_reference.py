@@ -307,10 +307,12 @@ def test_pipeline_psd_matches_scipy_through_velocity():
         pl.feed(x[pos:pos + size])
         pos += size
     a = pl.finish()
-    assert a.levels["velocity_rms_mm_s"] == pytest.approx(v_ref, rel=1e-10)
+    # the pipeline's segment FFT runs in float32 (agent/dsp/fastfft.py): its
+    # round-off is about 1e-7 of the result, the pure function's 1e-16
+    assert a.levels["velocity_rms_mm_s"] == pytest.approx(v_ref, rel=1e-6)
     assert velocity_rms_mm_s(p, f[1], lo, hi) == pytest.approx(v_ref, rel=1e-10)
     # the whole-array call gives the same
-    assert pl.analyze(x).levels["velocity_rms_mm_s"] == pytest.approx(v_ref, rel=1e-10)
+    assert pl.analyze(x).levels["velocity_rms_mm_s"] == pytest.approx(v_ref, rel=1e-6)
 
 
 # --------------------------------------------------------------------------- 5. envelope
@@ -328,8 +330,7 @@ def test_band_analytic_equals_scipy_hilbert_on_bin_centred_signal():
     out_band = 2.0 * np.cos(2 * np.pi * 20 * df * t)     # far below the band
     lo_bin, hi_bin = 400, 600
     mlen = _band_len(hi_bin - lo_bin)
-    z = band_analytic(np.fft.rfft(in_band + out_band), n, lo_bin, hi_bin,
-                      np.empty(mlen, complex), np.empty(mlen, complex))
+    z = band_analytic(np.fft.rfft(in_band + out_band), n, lo_bin, hi_bin, np.empty(mlen, complex))
     ref = np.abs(scipy.signal.hilbert(in_band))[::n // mlen]
     np.testing.assert_allclose(np.abs(z), ref, atol=1e-9)
 
@@ -356,8 +357,7 @@ def test_band_analytic_matches_scipy_hilbert_mid_segment():
     df = FS_HZ / n
     lo_bin, hi_bin = int(2000.0 / df), int(4000.0 / df)
     mlen = _band_len(hi_bin - lo_bin)
-    z = band_analytic(np.fft.rfft(x[s0:s0 + n]), n, lo_bin, hi_bin,
-                      np.empty(mlen, complex), np.empty(mlen, complex))
+    z = band_analytic(np.fft.rfft(x[s0:s0 + n]), n, lo_bin, hi_bin, np.empty(mlen, complex))
     ref_sq = np.abs(analytic[s0:s0 + n:n // mlen]) ** 2
     mid = slice(mlen // 4, 3 * mlen // 4)
     err = np.abs(np.abs(z[mid]) ** 2 - ref_sq[mid])
@@ -536,3 +536,18 @@ def test_shaft_speed_without_a_line_is_nominal():
     assert refine_shaft_hz(p, f[1], 25.0, 0.0) == (25.0, "nominal")
     with pytest.raises(ValueError):
         refine_shaft_hz(p, f[1], 0.0, 0.05)
+
+
+def test_noise_floor_is_the_numpy_median_of_the_neighbourhood():
+    # reference library: numpy.median over the bins around the centre, the
+    # peak's +-3 bins left out (the definition in agent/dsp/peaks.py)
+    from agent.dsp.peaks import noise_floor
+    rng = np.random.default_rng(21)
+    amp = rng.random(400)
+    for _ in range(200):
+        center_hz, half_hz = rng.uniform(10.0, 390.0), rng.uniform(1.0, 80.0)
+        c = int(round(center_hz))
+        hw = max(int(round(half_hz)), 7)
+        lo, hi = max(c - hw, 1), min(c + hw + 1, amp.size)
+        ref = np.median(np.concatenate((amp[lo:max(c - 3, lo)], amp[min(c + 4, hi):hi])))
+        assert noise_floor(amp, 1.0, center_hz, half_hz) == ref

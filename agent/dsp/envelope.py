@@ -8,7 +8,8 @@ the impacts (the defect frequency) and its harmonics.
 
 - :func:`band_analytic`: analytic signal of one band of a segment spectrum.
 - :func:`taper_squared`: the taper that the segment window leaves on the
-  squared envelope (``hann**2`` on the decimated grid).
+  squared envelope (``hann**2`` on the decimated grid), and
+  :func:`taper_squared_head`: its three non-zero DFT bins.
 - :func:`envelope_power`: one segment's contribution to the averaged
   squared-envelope power spectrum.
 - :func:`envelope_amplitude`: averaged power to line amplitudes.
@@ -31,10 +32,13 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["band_analytic", "taper_squared", "envelope_power", "envelope_amplitude"]
+from agent.dsp.fastfft import fft_inplace
+
+__all__ = ["band_analytic", "taper_squared", "taper_squared_head", "envelope_power",
+           "envelope_amplitude"]
 
 
-def band_analytic(spectrum, nperseg, lo_bin, hi_bin, work, out):
+def band_analytic(spectrum, nperseg, lo_bin, hi_bin, out):
     """Analytic signal of bins ``lo_bin:hi_bin`` of a segment spectrum.
 
     Parameters
@@ -45,13 +49,12 @@ def band_analytic(spectrum, nperseg, lo_bin, hi_bin, work, out):
         Segment length.
     lo_bin, hi_bin : int
         The band, as bin indices (``hi_bin`` exclusive).
-    work : ndarray, complex, length m
-        Scratch; ``m`` sets the decimated length (``m >= hi_bin - lo_bin``).
-    out : ndarray, complex, length m
-        Receives the analytic signal, shifted down by ``lo_bin`` bins (a
-        frequency shift leaves the envelope unchanged), sampled at
-        ``m / nperseg * fs``, scaled so that ``|out|`` is the envelope in the
-        signal's unit (times the segment window).
+    out : ndarray, complex64 or complex128, length m, contiguous
+        Receives the complex conjugate of the analytic signal, shifted down by
+        ``lo_bin`` bins (a frequency shift leaves the envelope unchanged),
+        sampled at ``m / nperseg * fs``, scaled so that ``|out|`` is the
+        envelope in the signal's unit (times the segment window).
+        ``m >= hi_bin - lo_bin`` sets the decimated length.
 
     Returns
     -------
@@ -61,18 +64,21 @@ def band_analytic(spectrum, nperseg, lo_bin, hi_bin, work, out):
     Notes
     -----
     For ``x = a cos(2 pi f t)`` with ``f`` in the band, ``rfft`` gives
-    ``a * nperseg / 2`` at ``f``; the inverse FFT of length ``m`` divides by
-    ``m``; the factor ``2 m / nperseg`` restores ``|out| = a``.
+    ``a * nperseg / 2`` at ``f``; the factor ``2 / nperseg`` restores
+    ``|out| = a``.  The band's inverse FFT is computed as the forward FFT of
+    its conjugate, in place (:func:`agent.dsp.fastfft.fft_inplace`):
+    ``fft(conj(X)) = m conj(ifft(X))``.  Only ``|out|`` is used downstream,
+    which the conjugate leaves unchanged.
     """
     nb = hi_bin - lo_bin
     m = out.shape[0]
-    if not (0 <= lo_bin < hi_bin <= spectrum.shape[0]) or nb > m or work.shape[0] != m:
+    if not (0 <= lo_bin < hi_bin <= spectrum.shape[0]) or nb > m:
         raise ValueError(f"band {lo_bin}:{hi_bin} does not fit spectrum of {spectrum.shape[0]} "
-                         f"bins and work length {m}")
-    work[:nb] = spectrum[lo_bin:hi_bin]
-    work[nb:] = 0.0
-    np.fft.ifft(work, out=out)
-    out *= 2.0 * m / nperseg
+                         f"bins and output length {m}")
+    np.conjugate(spectrum[lo_bin:hi_bin], out=out[:nb])
+    out[nb:] = 0.0
+    fft_inplace(out)
+    out *= 2.0 / nperseg
     return out
 
 
@@ -81,7 +87,8 @@ def taper_squared(m, out):
 
     The segment was windowed before the band was cut, so its squared envelope
     carries ``hann(t)**2``; this taper (a valid spectral window in itself) is
-    what the envelope spectrum is computed with.
+    what the envelope spectrum is computed with.  Its DFT has three non-zero
+    bins, ``3m/8, -m/4, m/16`` (see :func:`taper_squared_head`).
     """
     v = out[:m]
     k = np.arange(m, dtype=float)
@@ -93,43 +100,73 @@ def taper_squared(m, out):
     return v
 
 
-def envelope_power(z, taper, sq, tmp, spec, acc):
+def taper_squared_head(m):
+    """The non-zero bins 0, 1, 2 of the DFT of :func:`taper_squared` of ``m``.
+
+    ``hann**2 = 3/8 - cos(theta)/2 + cos(2 theta)/8`` with
+    ``theta = 2 pi k / m``, so its DFT is ``3m/8`` at bin 0, ``-m/4`` at bin 1
+    and ``m/16`` at bin 2, and zero elsewhere (``m >= 6``).
+
+    Returns
+    -------
+    ndarray, complex64, length 3
+    """
+    if m < 6:
+        raise ValueError(f"{m=} must be >= 6")
+    return np.array([3.0 * m / 8.0, -m / 4.0, m / 16.0], dtype=np.complex64)
+
+
+def envelope_power(z, head, spectrum, tmp, bins, acc):
     """Add one segment's squared-envelope power spectrum to ``acc``.
 
     Parameters
     ----------
-    z : ndarray, complex, length m
+    z : ndarray, complex64, length m
         Output of :func:`band_analytic`.
-    taper : ndarray, length m
-        :func:`taper_squared` of ``m``.
-    sq, tmp : ndarray, float, length m
+    head : ndarray, complex64, length 3
+        :func:`taper_squared_head` of ``m``.
+    spectrum : RealSpectrum
+        :class:`agent.dsp.fastfft.RealSpectrum` of length ``m``; its buffer
+        holds the squared envelope.
+    tmp : ndarray, float32, length >= m
         Scratch.
-    spec : ndarray, complex, length >= m // 2 + 1
-        Scratch for the spectrum of the squared envelope.
-    acc : ndarray, float, length <= m // 2 + 1
+    bins : ndarray, complex64, length ``len(acc)``
+        Scratch for the squared envelope's spectrum (reused for the float64
+        copy of its power, so that no mixed-precision operation needs a
+        casting buffer).
+    acc : ndarray, float64, length between 3 and ``m // 2 + 1``
         Accumulated power; its first ``len(acc)`` bins are updated.
 
     Notes
     -----
     The mean of the squared envelope is removed as ``taper * c`` with
     ``c = sum(sq) / sum(taper)``, the mean of ``|envelope|**2`` under the
-    taper, so that no DC leaks into the lowest bins.
+    taper, so that no DC leaks into the lowest bins.  Because the taper's DFT
+    has only three non-zero bins, this is done on the spectrum: ``sum(sq)`` is
+    bin 0 of ``rfft(sq)``, and ``c`` times the taper's three bins is
+    subtracted from bins 0-2.  Nothing is allocated.
     """
     m = z.shape[0]
     k = acc.shape[0]
+    if spectrum.n != m or not 3 <= k <= m // 2 + 1 or bins.shape[0] != k:
+        raise ValueError(f"spectrum of {spectrum.n}, {k} bins and scratch of {bins.shape[0]} "
+                         f"do not fit an envelope of {m} samples")
+    sq = spectrum.buffer
+    t = tmp[:m]
     np.multiply(z.real, z.real, out=sq)
-    np.multiply(z.imag, z.imag, out=tmp)
-    sq += tmp
-    c = float(sq.sum()) / float(taper.sum())
-    np.multiply(taper, c, out=tmp)
-    sq -= tmp
-    s = spec[:m // 2 + 1]
-    np.fft.rfft(sq, out=s)
+    np.multiply(z.imag, z.imag, out=t)
+    sq += t
+    spectrum.transform()
+    s = spectrum.bins(0, k, bins)
+    c = s[0].real / head[0].real
+    s[:3] -= c * head
     t = tmp[:k]
-    np.multiply(s[:k].real, s[:k].real, out=t)
-    acc += t
-    np.multiply(s[:k].imag, s[:k].imag, out=t)
-    acc += t
+    np.multiply(s.real, s.real, out=t)
+    np.multiply(s.imag, s.imag, out=sq[:k])
+    t += sq[:k]
+    wide = bins.view(np.float64)  # the bins are used up: their 8-byte items hold the float64 copy
+    wide[:] = t
+    acc += wide
 
 
 def envelope_amplitude(acc, segments, taper_sum, out):

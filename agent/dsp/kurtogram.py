@@ -112,17 +112,16 @@ class BandKurtosis:
             m = 1 << max(int(nb - 1).bit_length(), 3)
             self._bins.append((lo_bin, hi_bin, m))
         m_max = max(m for _, _, m in self._bins)
-        self._work = np.empty(m_max, dtype=complex)
-        self._z = np.empty(m_max, dtype=complex)
-        self._p = np.empty(m_max // 2)
-        self._p2 = np.empty(m_max // 2)
+        self._z = np.empty(m_max, dtype=np.complex64)
+        self._p = np.empty(m_max // 2, dtype=np.float32)
+        self._p2 = np.empty(m_max // 2, dtype=np.float32)
         # 1 / hann**2 over the central half, per decimated length m
         self._inv_w2 = {}
         for _, _, m in self._bins:
             if m not in self._inv_w2:
                 t = np.arange(m // 4, m // 4 + m // 2) / m
                 w = 0.5 - 0.5 * np.cos(2.0 * np.pi * t)
-                self._inv_w2[m] = 1.0 / (w * w)
+                self._inv_w2[m] = (1.0 / (w * w)).astype(np.float32)
         self._s2 = np.zeros(len(self.bands))
         self._s4 = np.zeros(len(self.bands))
         self._n = np.zeros(len(self.bands))
@@ -133,11 +132,24 @@ class BandKurtosis:
         self._s4[:] = 0.0
         self._n[:] = 0.0
 
-    def add(self, spectrum):
-        """Add one segment's spectrum (``rfft`` of the Hann-windowed segment)."""
+    def bin_range(self):
+        """``(lo_bin, hi_bin)`` covering every candidate band: what :meth:`add` needs."""
+        return (min(lo for lo, _, _ in self._bins), max(hi for _, hi, _ in self._bins))
+
+    def add(self, spectrum, offset=0):
+        """Add one segment's spectrum.
+
+        Parameters
+        ----------
+        spectrum : ndarray, complex
+            Bins ``offset:offset + len(spectrum)`` of the ``rfft`` of the
+            Hann-windowed segment; must cover :meth:`bin_range`.
+        offset : int, default 0
+            The first bin held.
+        """
         for i, (lo_bin, hi_bin, m) in enumerate(self._bins):
-            z = band_analytic(spectrum, self.nperseg, lo_bin, hi_bin,
-                              self._work[:m], self._z[:m])
+            z = band_analytic(spectrum, self.nperseg, lo_bin - offset, hi_bin - offset,
+                              self._z[:m])
             c = z[m // 4:m // 4 + m // 2]
             p = self._p[:m // 2]
             p2 = self._p2[:m // 2]

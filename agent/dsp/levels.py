@@ -19,6 +19,11 @@ import numpy as np
 
 __all__ = ["Moments", "rms", "crest_factor", "kurtosis"]
 
+#: Largest squared ratio of a block's mean to its standard deviation for which
+#: the block's central moments are taken from raw power sums (mean 0.1 sigma:
+#: the cancellation costs under 1e-4 of the fourth moment's 16 digits).
+RAW_SUMS_MAX_MEAN2 = 0.01
+
 
 class Moments:
     """Running central moments of a signal fed in blocks.
@@ -33,7 +38,9 @@ class Moments:
     -----
     Blocks are merged with the pairwise update formulas for the second to
     fourth central moments ([1]_, [2]_), which stay accurate for long signals
-    where summing raw powers would lose precision.
+    where summing raw powers would lose precision.  Within a block, raw power
+    sums are used when the block's mean is small against its spread (the
+    usual case for an AC-coupled accelerometer), and central sums otherwise.
 
     References
     ----------
@@ -50,6 +57,7 @@ class Moments:
             raise ValueError(f"{max_block=} must be >= 1")
         self._scratch = np.empty(max_block)
         self._scratch2 = np.empty(max_block)
+        self._ones = np.ones(max_block)
         self.reset()
 
     def reset(self):
@@ -76,15 +84,27 @@ class Moments:
             return
         if nb > self._scratch.shape[0]:
             raise ValueError(f"block of {nb} samples is longer than max_block={self._scratch.shape[0]}")
-        d = self._scratch[:nb]
         d2 = self._scratch2[:nb]
-        self.last_sum = float(x.sum())
+        self.last_sum = float(np.dot(x, self._ones[:nb]))  # BLAS: faster than a pairwise sum
         mean_b = self.last_sum / nb
-        np.subtract(x, mean_b, out=d)
-        m2_b = float(np.dot(d, d))
-        np.multiply(d, d, out=d2)
-        m4_b = float(np.dot(d2, d2))
-        m3_b = float(np.dot(d2, d))
+        s2 = float(np.dot(x, x))
+        if mean_b * mean_b <= RAW_SUMS_MAX_MEAN2 * max(s2 / nb - mean_b * mean_b, 0.0):
+            # mean small against the spread (an AC-coupled sensor): central moments
+            # from raw power sums about zero lose nothing and save a pass
+            np.multiply(x, x, out=d2)
+            s3 = float(np.dot(d2, x))
+            s4 = float(np.dot(d2, d2))
+            mu2 = mean_b * mean_b
+            m2_b = s2 - nb * mu2
+            m3_b = s3 - 3.0 * mean_b * s2 + 2.0 * nb * mu2 * mean_b
+            m4_b = s4 - 4.0 * mean_b * s3 + 6.0 * mu2 * s2 - 3.0 * nb * mu2 * mu2
+        else:
+            d = self._scratch[:nb]
+            np.subtract(x, mean_b, out=d)
+            m2_b = float(np.dot(d, d))
+            np.multiply(d, d, out=d2)
+            m4_b = float(np.dot(d2, d2))
+            m3_b = float(np.dot(d2, d))
         lo, hi = float(x.min()), float(x.max())
         self.last_min, self.last_max = lo, hi
         self.min = min(self.min, lo)

@@ -1,0 +1,75 @@
+"""The in-place single-precision FFTs against numpy's reference transforms."""
+
+import numpy as np
+import pytest
+
+from agent.dsp.envelope import envelope_power, taper_squared, taper_squared_head
+from agent.dsp.fastfft import RealSpectrum, fft_inplace
+
+# float32 round-off of a transform, relative to its largest bin (about 1e-7
+# per operation, growing like log2(n)): the limit used below
+F32_REL = 2e-6
+
+
+@pytest.mark.parametrize("n", [4, 6, 10, 1728, 6750, 65536])
+def test_real_spectrum_equals_numpy_rfft(n):
+    # reference library: numpy.fft.rfft in double precision; the half-length
+    # complex FFT unpacking is Brigham 1988, "The Fast Fourier Transform and its
+    # Applications", sec. 9.3
+    x = np.random.default_rng(n).standard_normal(n).astype(np.float32)
+    ref = np.fft.rfft(x.astype(np.float64))
+    rs = RealSpectrum(n, n // 2 + 1)
+    rs.buffer[:] = x
+    rs.transform()
+    h = n // 2
+    for lo, hi in [(0, h + 1), (0, 2), (1, h), (h // 2, h + 1), (h, h + 1)]:
+        out = rs.bins(lo, hi, np.empty(hi - lo, np.complex64))
+        np.testing.assert_allclose(out, ref[lo:hi], rtol=0, atol=F32_REL * np.abs(ref).max())
+
+
+def test_real_spectrum_refuses_what_does_not_fit():
+    rs = RealSpectrum(16, 4)
+    with pytest.raises(ValueError, match="bins"):
+        rs.bins(0, 5, np.empty(5, np.complex64))         # more than max_bins
+    with pytest.raises(ValueError, match="bins"):
+        rs.bins(6, 10, np.empty(4, np.complex64))        # beyond n // 2 + 1
+    with pytest.raises(ValueError, match="even"):
+        RealSpectrum(15, 4)
+
+
+@pytest.mark.parametrize("dtype", [np.complex64, np.complex128])
+def test_fft_inplace_equals_numpy_fft_and_writes_over_its_input(dtype):
+    # reference library: numpy.fft.fft
+    rng = np.random.default_rng(3)
+    z = (rng.standard_normal(6912) + 1j * rng.standard_normal(6912)).astype(dtype)
+    ref = np.fft.fft(z.astype(np.complex128))
+    out = fft_inplace(z)
+    assert out is z
+    tol = F32_REL if dtype == np.complex64 else 1e-12
+    np.testing.assert_allclose(z, ref, rtol=0, atol=tol * np.abs(ref).max())
+
+
+def test_taper_head_is_the_dft_of_the_squared_hann():
+    # reference library: numpy.fft.rfft; hann**2 = 3/8 - cos/2 + cos(2.)/8
+    # (trigonometry, from memory) has DFT 3m/8, -m/4, m/16 and zeros
+    for m in (6, 1080, 6750):
+        ref = np.fft.rfft(taper_squared(m, np.empty(m)))
+        np.testing.assert_allclose(taper_squared_head(m), ref[:3], atol=1e-9 * m)
+        assert np.abs(ref[3:]).max() < 1e-9 * m
+
+
+def test_envelope_power_equals_the_time_domain_recipe():
+    # reference: the squared envelope's mean removed under the taper in the time
+    # domain, then numpy.fft.rfft in double precision (Randall & Antoni 2011,
+    # sec. 3.2: the squared envelope spectrum)
+    m, k = 1080, 200
+    rng = np.random.default_rng(5)
+    z = (rng.standard_normal(m) + 1j * rng.standard_normal(m)).astype(np.complex64)
+    taper = taper_squared(m, np.empty(m))
+    sq = np.abs(z.astype(np.complex128)) ** 2
+    sq -= taper * sq.sum() / taper.sum()
+    ref = np.abs(np.fft.rfft(sq)[:k]) ** 2
+    acc = np.zeros(k)
+    envelope_power(z, taper_squared_head(m), RealSpectrum(m, k), np.empty(m, np.float32),
+                   np.empty(k, np.complex64), acc)
+    np.testing.assert_allclose(acc, ref, rtol=0, atol=1e-5 * ref.max())
