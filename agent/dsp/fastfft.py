@@ -6,7 +6,8 @@ precision:
 - :class:`RealSpectrum`: the real FFT of an even-length ``float32`` buffer,
   computed in place as a half-length complex FFT; the caller then asks for
   the bin ranges it needs (:meth:`RealSpectrum.bins`).
-- :func:`fft_inplace`: forward complex FFT written over its input.
+- :func:`fft_inplace`: forward complex FFT written over its input (one
+  vector, or each row of a matrix).
 
 Why ``scipy.fft`` in ``float32``
 --------------------------------
@@ -52,8 +53,9 @@ def fft_inplace(z):
 
     Parameters
     ----------
-    z : ndarray, complex64 or complex128, 1-D, contiguous
-        Input; receives ``numpy.fft.fft(z)`` (unnormalised).
+    z : ndarray, complex64 or complex128, 1-D or 2-D, C-contiguous
+        Input; receives ``numpy.fft.fft(z, axis=-1)`` (unnormalised): each
+        row of a 2-D array is transformed.
 
     Returns
     -------
@@ -67,9 +69,11 @@ def fft_inplace(z):
     against 72 us for 8192 points on the development machine).  An inverse
     transform is a forward one of the conjugate: ``ifft(X) = conj(fft(conj(X))) / n``.
     """
-    if z.dtype not in (np.complex64, np.complex128) or z.ndim != 1 or not z.flags.c_contiguous:
-        raise ValueError(f"z must be 1-D contiguous complex, got {z.dtype} with shape {z.shape}")
-    out = _fft.fft(z, overwrite_x=True)
+    if z.dtype not in (np.complex64, np.complex128) or z.ndim not in (1, 2) \
+            or not z.flags.c_contiguous:
+        raise ValueError(f"z must be 1-D or 2-D C-contiguous complex, got {z.dtype} "
+                         f"with shape {z.shape}")
+    out = _fft.fft(z, axis=-1, overwrite_x=True)
     if not np.shares_memory(out, z):  # a scipy that ignores overwrite_x: keep the contract
         z[:] = out
     return z

@@ -20,8 +20,9 @@ filters and takes, in each band, the kurtosis of the complex envelope ``c``::
 which is 0 for Gaussian noise, -1 for a pure tone and large for a train of
 impacts [2]_.  Here the same tree of bands is cut out of the spectrum of a
 Hann-windowed segment (an ideal, brick-wall filter bank) and the complex
-envelope of each band obtained by a short inverse FFT
-(:func:`agent.dsp.envelope.band_analytic`).  Only the central half of each
+envelope of each band obtained by a short inverse FFT, as in
+:func:`agent.dsp.envelope.band_analytic` (bands of one length are stacked
+and transformed together).  Only the central half of each
 segment, where the Hann window is at least 0.5, is used, divided by the
 window; with 50 % overlap the central halves of consecutive segments tile the
 signal exactly, so every sample counts once.
@@ -40,7 +41,7 @@ import math
 
 import numpy as np
 
-from agent.dsp.envelope import band_analytic
+from agent.dsp.fastfft import fft_inplace
 
 __all__ = ["candidate_bands", "BandKurtosis"]
 
@@ -111,17 +112,27 @@ class BandKurtosis:
             nb = hi_bin - lo_bin
             m = 1 << max(int(nb - 1).bit_length(), 3)
             self._bins.append((lo_bin, hi_bin, m))
-        m_max = max(m for _, _, m in self._bins)
-        self._z = np.empty(m_max, dtype=np.complex64)
-        self._p = np.empty(m_max // 2, dtype=np.float32)
-        self._p2 = np.empty(m_max // 2, dtype=np.float32)
-        # 1 / hann**2 over the central half, per decimated length m
+        # bands of one decimated length m are transformed together, as the rows
+        # of one matrix: (first band index, rows, m)
+        self._groups = []
+        for i, (_, _, m) in enumerate(self._bins):
+            if self._groups and self._groups[-1][2] == m:
+                first, rows, _ = self._groups[-1]
+                self._groups[-1] = (first, rows + 1, m)
+            else:
+                self._groups.append((i, 1, m))
+        size = max(rows * m for _, rows, m in self._groups)
+        self._zbuf = np.empty(size, dtype=np.complex64)
+        self._pbuf = np.empty(size, dtype=np.float32)
+        self._p2buf = np.empty(size, dtype=np.float32)
+        # (2 / nperseg)**2 / hann**2 over the central half, per decimated length m:
+        # undoes the segment window and scales |fft|**2 to the envelope squared
         self._inv_w2 = {}
         for _, _, m in self._bins:
             if m not in self._inv_w2:
                 t = np.arange(m // 4, m // 4 + m // 2) / m
                 w = 0.5 - 0.5 * np.cos(2.0 * np.pi * t)
-                self._inv_w2[m] = (1.0 / (w * w)).astype(np.float32)
+                self._inv_w2[m] = ((2.0 / nperseg) ** 2 / (w * w)).astype(np.float32)
         self._s2 = np.zeros(len(self.bands))
         self._s4 = np.zeros(len(self.bands))
         self._n = np.zeros(len(self.bands))
@@ -146,20 +157,40 @@ class BandKurtosis:
             Hann-windowed segment; must cover :meth:`bin_range`.
         offset : int, default 0
             The first bin held.
+
+        Notes
+        -----
+        Each band's complex envelope is the band's analytic signal as in
+        :func:`agent.dsp.envelope.band_analytic` (the conjugate band, a
+        forward FFT); the bands that share a decimated length are stacked as
+        the rows of one matrix and transformed in one call.
         """
-        for i, (lo_bin, hi_bin, m) in enumerate(self._bins):
-            z = band_analytic(spectrum, self.nperseg, lo_bin - offset, hi_bin - offset,
-                              self._z[:m])
-            c = z[m // 4:m // 4 + m // 2]
-            p = self._p[:m // 2]
-            p2 = self._p2[:m // 2]
-            np.multiply(c.real, c.real, out=p)
-            np.multiply(c.imag, c.imag, out=p2)
+        lo_all, hi_all = self.bin_range()
+        if offset > lo_all or offset + spectrum.shape[0] < hi_all:
+            raise ValueError(f"spectrum bins {offset}:{offset + spectrum.shape[0]} do not cover "
+                             f"the candidate bands' bins {lo_all}:{hi_all}")
+        for first, rows, m in self._groups:
+            z = self._zbuf[:rows * m].reshape(rows, m)
+            z.fill(0.0)
+            for r in range(rows):
+                lo_bin, hi_bin, _ = self._bins[first + r]
+                np.conjugate(spectrum[lo_bin - offset:hi_bin - offset], out=z[r, :hi_bin - lo_bin])
+            fft_inplace(z)
+            # |z|**2 of the whole matrix in three calls (contiguous: no numpy
+            # buffer), then each row's central half, contiguous again
+            flat = z.reshape(-1)
+            p = self._pbuf[:rows * m]
+            p2 = self._p2buf[:rows * m]
+            np.multiply(flat.real, flat.real, out=p)
+            np.multiply(flat.imag, flat.imag, out=p2)
             p += p2
-            p *= self._inv_w2[m]
-            self._s2[i] += float(p.sum())
-            self._s4[i] += float(np.dot(p, p))
-            self._n[i] += m // 2
+            w = self._inv_w2[m]
+            for r in range(rows):
+                c = p[r * m + m // 4:r * m + m // 4 + m // 2]
+                c *= w
+                self._s2[first + r] += float(c.sum())
+                self._s4[first + r] += float(np.dot(c, c))
+            self._n[first:first + rows] += m // 2
 
     def kurtosis(self):
         """Spectral kurtosis of each band, ``n S4 / S2**2 - 2`` (0 for noise)."""

@@ -68,7 +68,7 @@ def find_peak(amp, df_hz, target_hz, tol_hz, min_half_bins=1.5):
     lo, hi = _window_bins(target_hz, tol_hz, df_hz, n, min_half_bins)
     if hi - lo < 1 or target_hz <= 0:
         return None
-    k = lo + int(np.argmax(amp[lo:hi]))
+    k = lo + int(amp[lo:hi].argmax())
     offset = 0.0
     if 0 < k < n - 1:
         a, b, c = amp[k - 1], amp[k], amp[k + 1]
