@@ -71,14 +71,16 @@ def find_peak(amp, df_hz, target_hz, tol_hz, min_half_bins=1.5):
     k = lo + int(amp[lo:hi].argmax())
     offset = 0.0
     if 0 < k < n - 1:
-        a, b, c = amp[k - 1], amp[k], amp[k + 1]
+        a, b, c = amp[k - 1:k + 2].tolist()  # Python floats: scalar arithmetic below
         denom = a - 2.0 * b + c
         if denom < 0:
             offset = min(max(0.5 * (a - c) / denom, -0.5), 0.5)
+    else:
+        b = float(amp[k])
     freq_hz = (k + offset) * df_hz
     if abs(freq_hz - target_hz) > max(tol_hz, min_half_bins * df_hz):
         return None  # the window's edge holds the flank of a neighbouring line
-    return Peak(freq_hz, float(amp[k]), k)
+    return Peak(freq_hz, b, k)
 
 
 def noise_floor(amp, df_hz, center_hz, half_width_hz, guard_bins=3):
