@@ -8,14 +8,18 @@ and each segment's single FFT serves everything:
 - the Welch average of the acceleration power spectrum (velocity RMS in the
   ISO band, the shaft speed);
 - on the first segments, the spectral kurtosis of candidate bands (when the
-  demodulation band is chosen automatically); these segments' spectra are kept
-  in a fixed look-ahead store and replayed once the band is chosen;
+  demodulation band is chosen automatically); these segments' candidate bins
+  are kept in a fixed look-ahead store and replayed once the band is chosen;
 - the squared-envelope power spectrum of the demodulation band, averaged.
 
-Levels (RMS, peak, crest factor, kurtosis) and the quality gate see every
-sample once, as it arrives.  :meth:`Pipeline.finish` turns the averages into
-an :class:`Analysis`.  Nothing allocated per segment grows with the capture
-length or the number of captures.
+The samples are kept as two half-segment buffers used in turn (no copy on
+each hop).  The segment FFT runs in single precision, in place, and only the
+bins used (the low bins and the band) are unpacked
+(:mod:`agent.dsp.fastfft`); all averages are float64.  Levels (RMS, peak,
+crest factor, kurtosis) and the quality gate see every sample once, half a
+segment at a time.  :meth:`Pipeline.finish` turns the averages into an
+:class:`Analysis`.  Nothing is allocated per segment: memory does not grow
+with the capture length or the number of captures.
 
 Public API
 ----------
