@@ -12,12 +12,13 @@ and each segment's single FFT serves everything:
   are kept in a fixed look-ahead store and replayed once the band is chosen;
 - the squared-envelope power spectrum of the demodulation band, averaged.
 
-The samples are kept as two half-segment buffers used in turn (no copy on
-each hop).  The segment FFT runs in single precision, in place, and only the
-bins used (the low bins and the band) are unpacked
-(:mod:`agent.dsp.fastfft`); all averages are float64.  Levels (RMS, peak,
-crest factor, kurtosis) and the quality gate see every sample once, half a
-segment at a time.  :meth:`Pipeline.finish` turns the averages into an
+Samples are staged half a segment at a time: the quality gate checks each
+full half in float64, then it is cast once to float32 and kept as one of two
+halves used in turn (no copy on each hop).  Levels (RMS, peak, crest factor,
+kurtosis) are taken from that float32 copy, block sums merged in float64.
+The segment FFT runs in single precision, in place, and only the bins used
+(the low bins and the band) are unpacked (:mod:`agent.dsp.fastfft`); all
+averages are float64.  :meth:`Pipeline.finish` turns the averages into an
 :class:`Analysis`.  Nothing is allocated per segment: memory does not grow
 with the capture length or the number of captures.
 
@@ -246,7 +247,11 @@ class Pipeline:
         # rfft(hann) is nperseg/2 at bin 0 and -nperseg/4 at bin 1, zero elsewhere:
         # removing a segment's mean is a correction of those two bins
         self._hann_head = np.array([self.nperseg / 2.0, -self.nperseg / 4.0])
-        self._halves = np.zeros((2, self.hop))  # the segment, as two halves used in turn
+        # samples arrive in a float64 half-segment; each full half is checked by
+        # the quality gate, cast once to float32 and kept, the segment being the
+        # previous half and this one
+        self._stage = np.zeros(self.hop)
+        self._halves = np.zeros((2, self.hop), dtype=np.float32)
         self._half_sums = [0.0, 0.0]
         # bins the look-ahead store keeps: every candidate band
         if self._kurt is not None:
@@ -278,7 +283,7 @@ class Pipeline:
         self._env_amp = np.empty(self.env_bins)
         self._env_freqs = np.arange(self.env_bins) * self.df_hz
         self._env_freqs.flags.writeable = False
-        self._moments = Moments(self.hop)
+        self._moments = Moments(self.hop, dtype=np.float32)
         self._gate = QualityGate(self.hop, full_scale_m_s2)
         lo_v, hi_v = velocity_band_hz(m.shaft_hz, self.lowest_trusted_hz)
         self.velocity_band_hz = (lo_v, min(hi_v, 0.45 * fs))
@@ -336,21 +341,23 @@ class Pipeline:
         hop = self.hop
         while pos < n:
             take = min(n - pos, hop - self._fill)
-            self._halves[self._half, self._fill:self._fill + take] = block[pos:pos + take]
+            self._stage[self._fill:self._fill + take] = block[pos:pos + take]
             self._fill += take
             pos += take
             if self._fill == hop:
                 self._half_done(hop)
 
-    def _levels(self, part):
-        """Levels and quality gate see every sample once, a half-segment at a time."""
-        mom = self._moments
-        mom.add(part)
-        self._gate.add(part, mom.last_sum, mom.last_min, mom.last_max)
+    def _levels(self, n):
+        """Quality gate (float64) and levels (float32 copy) of the ``n`` staged
+        samples: every sample is seen once, half a segment at a time."""
+        self._gate.add(self._stage[:n])
+        part = self._halves[self._half, :n]
+        part[:] = self._stage[:n]
+        self._moments.add(part)
 
     def _half_done(self, n):
         cur = self._half
-        self._levels(self._halves[cur, :n])
+        self._levels(n)
         self._half_sums[cur] = self._moments.last_sum
         if self._have_first:
             self._segment(1 - cur, cur)
@@ -362,12 +369,8 @@ class Pipeline:
         hop = self.hop
         rs = self._rs
         xw = rs.buffer
-        # cast first, then multiply in float32: a mixed-precision multiply would
-        # need numpy's casting buffer and take longer
-        xw[:hop] = self._halves[first]
-        xw[hop:] = self._halves[second]
-        xw[:hop] *= self._w_first
-        xw[hop:] *= self._w_second
+        np.multiply(self._halves[first], self._w_first, out=xw[:hop])
+        np.multiply(self._halves[second], self._w_second, out=xw[hop:])
         rs.transform()
         mean = (self._half_sums[first] + self._half_sums[second]) / self.nperseg
         low = self._remove_mean(rs.bins(0, self.psd_bins, self._low), 0, mean)
@@ -432,7 +435,7 @@ class Pipeline:
             Flags raised by the acquisition (``"overrun"``, ``"wrong_rate"``).
         """
         if self._fill:  # the samples after the last whole half-segment
-            self._levels(self._halves[self._half, :self._fill])
+            self._levels(self._fill)
             self._fill = 0
         if self.band is None and self._stored:
             self._choose_band()

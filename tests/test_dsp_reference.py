@@ -201,6 +201,25 @@ def test_moments_refuses_oversized_block():
         Moments(0)
     with pytest.raises(ValueError):
         Moments(16).add(np.zeros(17))
+    with pytest.raises(ValueError, match="float32"):
+        Moments(16, dtype=np.float32).add(np.zeros(8))       # float64 block
+
+
+@pytest.mark.parametrize("offset", [0.0, 100.0])
+def test_single_precision_moments_match_scipy_on_the_same_samples(offset):
+    # reference library: scipy.stats / numpy in float64 on the very float32
+    # samples the pipeline's levels see; single-precision block sums (BLAS
+    # dot products, about 1e-7 relative) merged in float64
+    rng = np.random.default_rng(17)
+    x = (np.concatenate([rng.standard_t(3, 100_000), tone(123.0, 2.0, 1.0, fs=51200.0)])
+         + offset).astype(np.float32)
+    mom = Moments(32768, dtype=np.float32)
+    for start in range(0, x.size, 32768):
+        mom.add(x[start:start + 32768])
+    ref = x.astype(np.float64)
+    assert mom.rms == pytest.approx(np.std(ref), rel=1e-6)
+    assert mom.kurtosis == pytest.approx(scipy.stats.kurtosis(ref, fisher=False), rel=1e-5)
+    assert mom.peak == pytest.approx(np.max(np.abs(ref - ref.mean())), rel=1e-6)
 
 
 # --------------------------------------------------------------------------- 3. velocity

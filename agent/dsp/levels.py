@@ -33,6 +33,11 @@ class Moments:
     max_block : int
         Largest block that :meth:`add` will be given; a scratch array of this
         size is allocated once.
+    dtype : float32 or float64, default float64
+        Type of the blocks :meth:`add` takes.  With ``float32`` the block's
+        sums are taken in single precision (BLAS dot products, relative error
+        about 1e-7 over a block of 32 768 samples) and merged in double
+        precision; the pipeline uses it on the samples it casts for its FFT.
 
     Notes
     -----
@@ -52,12 +57,15 @@ class Moments:
        SAND2008-6212, 2008, eq. (3.1)-(3.3).
     """
 
-    def __init__(self, max_block):
+    def __init__(self, max_block, dtype=np.float64):
         if max_block < 1:
             raise ValueError(f"{max_block=} must be >= 1")
-        self._scratch = np.empty(max_block)
-        self._scratch2 = np.empty(max_block)
-        self._ones = np.ones(max_block)
+        self.dtype = np.dtype(dtype)
+        if self.dtype not in (np.float32, np.float64):
+            raise ValueError(f"{dtype=} must be float32 or float64")
+        self._scratch = np.empty(max_block, dtype=self.dtype)
+        self._scratch2 = np.empty(max_block, dtype=self.dtype)
+        self._ones = np.ones(max_block, dtype=self.dtype)
         self.reset()
 
     def reset(self):
@@ -84,6 +92,8 @@ class Moments:
             return
         if nb > self._scratch.shape[0]:
             raise ValueError(f"block of {nb} samples is longer than max_block={self._scratch.shape[0]}")
+        if x.dtype != self.dtype:
+            raise ValueError(f"block of {x.dtype} given to moments of {self.dtype}")
         d2 = self._scratch2[:nb]
         self.last_sum = float(np.dot(x, self._ones[:nb]))  # BLAS: faster than a pairwise sum
         mean_b = self.last_sum / nb

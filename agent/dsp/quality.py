@@ -69,29 +69,28 @@ class QualityGate:
         self.extreme = 0.0
         self.at_extreme = 0
 
-    def add(self, x, block_sum=None, block_min=None, block_max=None):
+    def add(self, x, block_min=None, block_max=None):
         """Inspect a block of samples in m/s².
 
         Parameters
         ----------
         x : ndarray
             The block.
-        block_sum, block_min, block_max : float, optional
-            The block's sum, minimum and maximum when the caller has them
-            already (:class:`~agent.dsp.levels.Moments` does): the block is
-            then only read again when it reaches full scale or its running
-            extreme, which is rare.
+        block_min, block_max : float, optional
+            The block's minimum and maximum when the caller has them already:
+            the block is then only read again when it reaches full scale or
+            its running extreme, which is rare.  NaN or infinity in the block
+            shows in them (``numpy.min`` propagates NaN).
         """
         nb = x.shape[0]
         if nb == 0:
             return
         self.n += nb
-        total = float(x.sum()) if block_sum is None else block_sum
-        if not math.isfinite(total):
-            self.nonfinite = True
-            return
         if block_min is None:
             block_min, block_max = float(x.min()), float(x.max())
+        if not (math.isfinite(block_min) and math.isfinite(block_max)):
+            self.nonfinite = True
+            return
         peak = max(-block_min, block_max)
         fs = self.full_scale_m_s2
         near_fs = fs is not None and peak >= 0.999 * fs
