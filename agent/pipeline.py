@@ -12,10 +12,11 @@ and each segment's single FFT serves everything:
   are kept in a fixed look-ahead store and replayed once the band is chosen;
 - the squared-envelope power spectrum of the demodulation band, averaged.
 
-Samples are staged half a segment at a time: the quality gate checks each
-full half in float64, then it is cast once to float32 and kept as one of two
-halves used in turn (no copy on each hop).  Levels (RMS, peak, crest factor,
-kurtosis) are taken from that float32 copy, block sums merged in float64.
+Samples are cast to float32 as they arrive (a 16- or 24-bit converter's
+values are exact in float32) and kept in two half-segment buffers used in
+turn (no copy on each hop).  Levels (RMS, peak, crest factor, kurtosis) and
+the quality gate see every sample once, half a segment at a time; block sums
+are merged in float64.
 The segment FFT runs in single precision, in place, and only the bins used
 (the low bins and the band) are unpacked (:mod:`agent.dsp.fastfft`); all
 averages are float64.  :meth:`Pipeline.finish` turns the averages into an
@@ -247,10 +248,8 @@ class Pipeline:
         # rfft(hann) is nperseg/2 at bin 0 and -nperseg/4 at bin 1, zero elsewhere:
         # removing a segment's mean is a correction of those two bins
         self._hann_head = np.array([self.nperseg / 2.0, -self.nperseg / 4.0])
-        # samples arrive in a float64 half-segment; each full half is checked by
-        # the quality gate, cast once to float32 and kept, the segment being the
-        # previous half and this one
-        self._stage = np.zeros(self.hop)
+        # samples are cast to float32 as they arrive, into two half-segment
+        # buffers used in turn: a segment is the previous half and this one
         self._halves = np.zeros((2, self.hop), dtype=np.float32)
         self._half_sums = [0.0, 0.0]
         # bins the look-ahead store keeps: every candidate band
@@ -341,19 +340,19 @@ class Pipeline:
         hop = self.hop
         while pos < n:
             take = min(n - pos, hop - self._fill)
-            self._stage[self._fill:self._fill + take] = block[pos:pos + take]
+            self._halves[self._half, self._fill:self._fill + take] = block[pos:pos + take]
             self._fill += take
             pos += take
             if self._fill == hop:
                 self._half_done(hop)
 
     def _levels(self, n):
-        """Quality gate (float64) and levels (float32 copy) of the ``n`` staged
-        samples: every sample is seen once, half a segment at a time."""
-        self._gate.add(self._stage[:n])
+        """Levels and quality gate of the first ``n`` samples of the half being
+        filled: every sample is seen once, half a segment at a time."""
         part = self._halves[self._half, :n]
-        part[:] = self._stage[:n]
-        self._moments.add(part)
+        mom = self._moments
+        mom.add(part)
+        self._gate.add(part, mom.last_min, mom.last_max)
 
     def _half_done(self, n):
         cur = self._half
