@@ -40,8 +40,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from agent.dsp.bearing import defect_frequencies_hz
-from agent.dsp.envelope import (band_analytic, envelope_amplitude, envelope_power,
-                                taper_squared_head)
+from agent.dsp.envelope import envelope_amplitude, envelope_power_pair, taper_squared_head
 from agent.dsp.fastfft import RealSpectrum
 from agent.dsp.iso import iso_zone, velocity_band_hz
 from agent.dsp.kurtogram import BandKurtosis, candidate_bands
@@ -267,23 +266,23 @@ class Pipeline:
         self._psd = np.empty(self.psd_bins)
         self._store = np.empty((LOOKAHEAD_SEGMENTS if self._kurt is not None else 0,
                                 self._cand_hi - self._cand_lo), dtype=np.complex64)
-        self._z = np.empty(m_max, dtype=np.complex64)
+        # envelopes are computed two segments at a time: the first one's band waits
+        self._pending_band = np.empty(widest, dtype=np.complex64)
+        self._z2 = np.empty(2 * m_max, dtype=np.complex64)
+        self._w = np.empty(m_max, dtype=np.complex64)
         self._tmp = np.empty(m_max, dtype=np.float32)
-        self._env_bins_spec = np.empty(self.env_bins, dtype=np.complex64)
-        # per distinct envelope length (a handful at most): taper bins, real FFT
-        self._env_plans = {}
+        # the squared taper's DFT bins, per distinct envelope length (a handful at most)
+        self._taper_heads = {}
         for band in self.bands:
             lo_bin, hi_bin = self._band_bins(band)
             length = min(_env_len(hi_bin - lo_bin, self.env_bins), m_max)
-            if length not in self._env_plans:
-                self._env_plans[length] = (taper_squared_head(length),
-                                           RealSpectrum(length, self.env_bins))
+            self._taper_heads.setdefault(length, taper_squared_head(length))
         self._env_acc = np.zeros(self.env_bins)
         self._env_amp = np.empty(self.env_bins)
         self._env_freqs = np.arange(self.env_bins) * self.df_hz
         self._env_freqs.flags.writeable = False
         self._moments = Moments(self.hop, dtype=np.float32)
-        self._gate = QualityGate(self.hop, full_scale_m_s2)
+        self._gate = QualityGate(self.hop, full_scale_m_s2, dtype=np.float32)
         lo_v, hi_v = velocity_band_hz(m.shaft_hz, self.lowest_trusted_hz)
         self.velocity_band_hz = (lo_v, min(hi_v, 0.45 * fs))
         k_lo = int(math.ceil(self.velocity_band_hz[0] / self.df_hz))
@@ -302,9 +301,9 @@ class Pipeline:
         self.band = band
         lo_bin, hi_bin = self._band_bins(band)
         self._lo_bin, self._hi_bin = lo_bin, hi_bin
-        m = min(_env_len(hi_bin - lo_bin, self.env_bins), self._z.shape[0])
+        m = min(_env_len(hi_bin - lo_bin, self.env_bins), self._w.shape[0])
         self._m = m
-        self._taper_head, self._env_rs = self._env_plans[m]
+        self._taper_head = self._taper_heads[m]
         self._taper_sum = float(self._taper_head[0].real)
 
     # ------------------------------------------------------------------ streaming
@@ -315,6 +314,7 @@ class Pipeline:
         self._have_first = False  # the other half holds the first half of a segment
         self._segments = 0
         self._env_segments = 0
+        self._pending = False
         self._stored = 0
         self._psd_acc[:] = 0.0
         self._env_acc[:] = 0.0
@@ -411,13 +411,20 @@ class Pipeline:
         self._stored = 0
 
     def _envelope(self, band):
-        """The squared-envelope power of one segment, from its band's bins."""
-        m = self._m
+        """One segment's band bins: kept until the next one, then both envelopes."""
         nb = band.shape[0]
-        z = band_analytic(band, self.nperseg, 0, nb, self._z[:m])
-        envelope_power(z, self._taper_head, self._env_rs, self._tmp, self._env_bins_spec,
-                       self._env_acc)
-        self._env_segments += 1
+        if not self._pending:
+            self._pending_band[:nb] = band
+            self._pending = True
+            return
+        self._envelope_pair(self._pending_band[:nb], band)
+
+    def _envelope_pair(self, band_a, band_b):
+        m = self._m
+        envelope_power_pair(band_a, band_b, self.nperseg, self._taper_head,
+                            self._z2[:2 * m].reshape(2, m), self._w[:m], self._tmp, self._env_acc)
+        self._env_segments += 1 if band_b is None else 2
+        self._pending = False
 
     # ------------------------------------------------------------------ result
     def finish(self, extra_flags=()):
@@ -438,6 +445,8 @@ class Pipeline:
             self._fill = 0
         if self.band is None and self._stored:
             self._choose_band()
+        if self._pending:  # an odd segment out
+            self._envelope_pair(self._pending_band[:self._hi_bin - self._lo_bin], None)
         mom = self._moments
         flags = self._gate.flags(mom.mean, mom.rms, mom.max - mom.min if mom.n else 0.0,
                                  self.nperseg)

@@ -11,7 +11,8 @@ the impacts (the defect frequency) and its harmonics.
   squared envelope (``hann**2`` on the decimated grid), and
   :func:`taper_squared_head`: its three non-zero DFT bins.
 - :func:`envelope_power`: one segment's contribution to the averaged
-  squared-envelope power spectrum.
+  squared-envelope power spectrum; :func:`envelope_power_pair`: two
+  segments' at once, from their band bins (what the pipeline runs).
 - :func:`envelope_amplitude`: averaged power to line amplitudes.
 
 Every function writes into arrays given by the caller, so the pipeline
@@ -35,7 +36,7 @@ import numpy as np
 from agent.dsp.fastfft import fft_inplace
 
 __all__ = ["band_analytic", "taper_squared", "taper_squared_head", "envelope_power",
-           "envelope_amplitude"]
+           "envelope_power_pair", "envelope_amplitude"]
 
 
 def band_analytic(spectrum, nperseg, lo_bin, hi_bin, out):
@@ -167,6 +168,89 @@ def envelope_power(z, head, spectrum, tmp, bins, acc):
     wide = bins.view(np.float64)  # the bins are used up: their 8-byte items hold the float64 copy
     wide[:] = t
     acc += wide
+
+
+def envelope_power_pair(band_a, band_b, nperseg, head, z2, w, tmp, acc):
+    """Add two segments' squared-envelope power spectra to ``acc`` at once.
+
+    The same result as :func:`band_analytic` and :func:`envelope_power` for
+    each segment, with fewer and cheaper transforms: both bands go through
+    one two-row FFT, and the two real squared envelopes through one complex
+    FFT.
+
+    Parameters
+    ----------
+    band_a, band_b : ndarray, complex
+        The demodulation band's bins of two segment spectra (``rfft`` of the
+        Hann-windowed segments), of equal length ``nb``; ``band_b`` may be
+        ``None`` for a lone segment.
+    nperseg : int
+        Segment length.
+    head : ndarray, complex64, length 3
+        :func:`taper_squared_head` of ``m``.
+    z2 : ndarray, complex64, shape (2, m), C-contiguous
+        Scratch for the two analytic signals; ``m >= nb``.
+    w : ndarray, complex64, length m, contiguous
+        Scratch for the two squared envelopes.
+    tmp : ndarray, float32, length >= m
+        Scratch.
+    acc : ndarray, float64, length K, ``3 <= K <= m // 2 + 1``
+        Accumulated power, as :func:`envelope_power` leaves it.
+
+    Notes
+    -----
+    - Each band is scaled by ``2 / nperseg`` as it is copied and transformed
+      forwards without conjugation: the result is the analytic signal
+      reversed in time (``fft(X) = m ifft(X)`` at ``-t``).  The reversal
+      changes neither the envelope's values nor its power spectrum, and the
+      squared Hann taper is symmetric, so the mean removal is unchanged.
+    - Two real sequences in one complex FFT: with ``W = fft(a + 1j b)``,
+      ``A = (W[k] + conj(W[-k])) / 2`` and ``B = (W[k] - conj(W[-k])) / 2j``,
+      hence ``|A[k]|**2 + |B[k]|**2 = (|W[k]|**2 + |W[-k]|**2) / 2`` (Brigham
+      1988, sec. 9.3): the summed power needs no separation.
+    - The means are removed on the spectrum as in :func:`envelope_power`,
+      with ``c = W[0] / sum(taper)`` holding both segments' means (real and
+      imaginary part) and subtracted at bins 0, +-1, +-2.
+    """
+    nb = band_a.shape[0]
+    m = w.shape[0]
+    k = acc.shape[0]
+    if z2.shape != (2, m) or nb > m or not 3 <= k <= m // 2 + 1 or tmp.shape[0] < m \
+            or (band_b is not None and band_b.shape[0] != nb):
+        raise ValueError(f"bands of {nb} bins, scratch {z2.shape} and {m}, {k} bins do not fit")
+    scale = 2.0 / nperseg
+    np.multiply(band_a, scale, out=z2[0, :nb])
+    if band_b is None:
+        z2[1, :nb] = 0.0
+    else:
+        np.multiply(band_b, scale, out=z2[1, :nb])
+    z2[:, nb:] = 0.0
+    fft_inplace(z2)
+    t = tmp[:m]
+    for row, part in ((z2[0], w.real), (z2[1], w.imag)):
+        np.multiply(row.real, row.real, out=part)
+        np.multiply(row.imag, row.imag, out=t)
+        part += t
+    fft_inplace(w)
+    c = w[0] / head[0].real
+    w[:3] -= c * head
+    w[m - 2:] -= c * head[2:0:-1]
+    # (|W[k]|^2 + |W[m-k]|^2) / 2 for k = 1 .. K-1; bin 0 holds no line
+    top = w[1:k]
+    mirror = w[m - k + 1:][::-1]
+    p = tmp[:k - 1]
+    q = tmp[m - k + 1:m]  # apart from p: k <= m // 2 + 1
+    np.multiply(top.real, top.real, out=p)
+    np.multiply(top.imag, top.imag, out=q)
+    p += q
+    np.multiply(mirror.real, mirror.real, out=q)
+    p += q
+    np.multiply(mirror.imag, mirror.imag, out=q)
+    p += q
+    p *= 0.5
+    wide = w[:k - 1].view(np.float64)  # w is used up: its 8-byte items hold the float64 copy
+    wide[:] = p
+    acc[1:k] += wide
 
 
 def envelope_amplitude(acc, segments, taper_sum, out):

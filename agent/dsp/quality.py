@@ -51,13 +51,16 @@ class QualityGate:
         Acceleration at the converter's full scale.  ``None`` for recordings
         stored in m/s² with no known full scale: clipping is then recognised
         by a flat top, the same extreme value repeated.
+    dtype : float32 or float64, default float64
+        Type of the blocks given to :meth:`add` (the scratch matches it, so
+        that no conversion is needed).
     """
 
-    def __init__(self, max_block, full_scale_m_s2=None):
+    def __init__(self, max_block, full_scale_m_s2=None, dtype=np.float64):
         if full_scale_m_s2 is not None and not full_scale_m_s2 > 0:
             raise ValueError(f"{full_scale_m_s2=} must be positive or None")
         self.full_scale_m_s2 = full_scale_m_s2
-        self._abs = np.empty(max_block)
+        self._abs = np.empty(max_block, dtype=dtype)
         self._mask = np.empty(max_block, dtype=bool)
         self.reset()
 
