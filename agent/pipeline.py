@@ -41,7 +41,7 @@ import numpy as np
 
 from agent.dsp.bearing import defect_frequencies_hz
 from agent.dsp.envelope import envelope_amplitude, envelope_power_pair, taper_squared_head
-from agent.dsp.fastfft import RealSpectrum
+from agent.dsp.fastfft import RealSpectrum, fast_length
 from agent.dsp.iso import iso_zone, velocity_band_hz
 from agent.dsp.kurtogram import BandKurtosis, candidate_bands
 from agent.dsp.levels import Moments
@@ -76,24 +76,7 @@ def _env_len(nb, env_bins):
     ``env_bins``, so the analysed part stays clean (and ``m // 2 + 1`` holds
     ``env_bins``).  The smallest such length with small prime factors (a
     6912-point transform is 1.4 times faster than an 8192-point one)."""
-    return _fast_len(max(nb + env_bins, 2 * env_bins, 8))
-
-
-def _fast_len(n):
-    """Smallest even ``m >= n`` whose only prime factors are 2, 3 and 5."""
-    best = _pow2_ceil(n)
-    p3 = 1
-    while p3 < best:
-        p35 = p3
-        while p35 < best:
-            m = p35
-            while m < n:
-                m *= 2
-            if m < best and m % 2 == 0:
-                best = m
-            p35 *= 5
-        p3 *= 3
-    return best
+    return fast_length(max(nb + env_bins, 2 * env_bins, 8))
 
 
 def plan_segment(fs, capture_s, point):

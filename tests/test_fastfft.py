@@ -96,3 +96,20 @@ def test_envelope_power_pair_equals_two_single_segments(lone):
                         np.empty(m, np.float32), acc)
     np.testing.assert_allclose(acc[1:], ref[1:], rtol=0, atol=1e-5 * ref.max())
     assert abs(acc[0]) <= 1e-5 * ref.max()
+
+
+def test_fast_length_is_the_smallest_5_smooth_multiple():
+    # reference: the definition, by brute force (a length whose prime factors
+    # are 2, 3 and 5 only, a multiple of the step, at least n)
+    from agent.dsp.fastfft import fast_length
+
+    def smooth(m):
+        for p in (2, 3, 5):
+            while m % p == 0:
+                m //= p
+        return m == 1
+
+    for multiple in (1, 2, 4):
+        for n in list(range(1, 300)) + [5461, 6563, 8193]:
+            want = next(m for m in range(n, 4 * n + 8) if m % multiple == 0 and smooth(m))
+            assert fast_length(n, multiple) == want, (n, multiple)

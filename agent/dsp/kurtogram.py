@@ -41,7 +41,7 @@ import math
 
 import numpy as np
 
-from agent.dsp.fastfft import fft_inplace
+from agent.dsp.fastfft import fast_length, fft_inplace
 
 __all__ = ["candidate_bands", "BandKurtosis"]
 
@@ -109,8 +109,7 @@ class BandKurtosis:
             lo_bin, hi_bin = int(round(lo / df)), int(round(hi / df))
             lo_bin = max(lo_bin, 1)
             hi_bin = min(hi_bin, nperseg // 2 + 1)
-            nb = hi_bin - lo_bin
-            m = 1 << max(int(nb - 1).bit_length(), 3)
+            m = fast_length(max(hi_bin - lo_bin, 8), multiple=4)
             self._bins.append((lo_bin, hi_bin, m))
         # bands of one decimated length m are transformed together, as the rows
         # of one matrix: (first band index, rows, m)
