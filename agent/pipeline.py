@@ -220,7 +220,8 @@ class Pipeline:
 
         widest = max(self._band_bins(b)[1] - self._band_bins(b)[0] for b in self.bands)
         m_max = _env_len(widest, self.env_bins)
-        self._kurt = BandKurtosis(fs, self.nperseg, self.bands) if self.band_source == "auto" else None
+        self._kurt = (BandKurtosis(fs, self.nperseg, self.bands, max_segments=LOOKAHEAD_SEGMENTS)
+                      if self.band_source == "auto" else None)
         # PSD bins needed: the velocity band and the shaft-speed search
         self.psd_bins = min(self.nbins, int(math.ceil(max(1000.0, 1.6 * fastest) / self.df_hz)) + 2)
 
@@ -386,10 +387,8 @@ class Pipeline:
         self._psd_acc += self._pw64
         self._segments += 1
         if self.band is None:
-            kept = self._remove_mean(rs.bins(self._cand_lo, self._cand_hi,
-                                             self._store[self._stored], r),
-                                     self._cand_lo, mean)
-            self._kurt.add(kept, offset=self._cand_lo)
+            self._remove_mean(rs.bins(self._cand_lo, self._cand_hi, self._store[self._stored], r),
+                              self._cand_lo, mean)
             self._stored += 1
             if self._stored == LOOKAHEAD_SEGMENTS:
                 self._choose_band()
@@ -408,6 +407,7 @@ class Pipeline:
         return spec
 
     def _choose_band(self):
+        self._kurt.add(self._store[:self._stored], offset=self._cand_lo)
         lo, hi, k = self._kurt.best()
         self.band_kurtosis = k
         self._select_band((lo, hi))

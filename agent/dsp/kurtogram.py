@@ -97,7 +97,7 @@ class BandKurtosis:
         Candidate bands in Hz, e.g. from :func:`candidate_bands`.
     """
 
-    def __init__(self, fs, nperseg, bands):
+    def __init__(self, fs, nperseg, bands, max_segments=1):
         if not bands:
             raise ValueError("no candidate band: widen the limits or lower the minimum width")
         df = fs / nperseg
@@ -120,18 +120,24 @@ class BandKurtosis:
                 self._groups[-1] = (first, rows + 1, m)
             else:
                 self._groups.append((i, 1, m))
-        size = max(rows * m for _, rows, m in self._groups)
+        if max_segments < 1:
+            raise ValueError(f"{max_segments=} must be >= 1")
+        self.max_segments = max_segments
+        size = max_segments * max(rows * m for _, rows, m in self._groups)
         self._zbuf = np.empty(size, dtype=np.complex64)
         self._pbuf = np.empty(size, dtype=np.float32)
         self._p2buf = np.empty(size, dtype=np.float32)
-        # (2 / nperseg)**2 / hann**2 over the central half, per decimated length m:
-        # undoes the segment window and scales |fft|**2 to the envelope squared
-        self._inv_w2 = {}
+        self._sums = np.empty(max_segments * len(self.bands), dtype=np.float32)
+        # weights over the central half, per decimated length m: (2 / nperseg)**2 /
+        # hann**2 undoes the segment window and scales |fft|**2 to the envelope
+        # squared; its square weights |fft|**4
+        self._weights = {}
         for _, _, m in self._bins:
-            if m not in self._inv_w2:
+            if m not in self._weights:
                 t = np.arange(m // 4, m // 4 + m // 2) / m
                 w = 0.5 - 0.5 * np.cos(2.0 * np.pi * t)
-                self._inv_w2[m] = ((2.0 / nperseg) ** 2 / (w * w)).astype(np.float32)
+                inv_w2 = (2.0 / nperseg) ** 2 / (w * w)
+                self._weights[m] = (inv_w2.astype(np.float32), (inv_w2 * inv_w2).astype(np.float32))
         self._s2 = np.zeros(len(self.bands))
         self._s4 = np.zeros(len(self.bands))
         self._n = np.zeros(len(self.bands))
@@ -146,14 +152,15 @@ class BandKurtosis:
         """``(lo_bin, hi_bin)`` covering every candidate band: what :meth:`add` needs."""
         return (min(lo for lo, _, _ in self._bins), max(hi for _, hi, _ in self._bins))
 
-    def add(self, spectrum, offset=0):
-        """Add one segment's spectrum.
+    def add(self, spectra, offset=0):
+        """Add one segment's spectrum, or several segments' at once.
 
         Parameters
         ----------
-        spectrum : ndarray, complex
-            Bins ``offset:offset + len(spectrum)`` of the ``rfft`` of the
-            Hann-windowed segment; must cover :meth:`bin_range`.
+        spectra : ndarray, complex, 1-D or 2-D (segments, bins)
+            Bins ``offset:offset + spectra.shape[-1]`` of the ``rfft`` of
+            Hann-windowed segments (at most ``max_segments`` rows); must
+            cover :meth:`bin_range`.
         offset : int, default 0
             The first bin held.
 
@@ -161,35 +168,48 @@ class BandKurtosis:
         -----
         Each band's complex envelope is the band's analytic signal as in
         :func:`agent.dsp.envelope.band_analytic` (the conjugate band, a
-        forward FFT); the bands that share a decimated length are stacked as
-        the rows of one matrix and transformed in one call.
+        forward FFT).  Every band of one decimated length, of every segment
+        given, is a row of one matrix transformed in one call (``scipy.fft``
+        runs rows side by side); the weighted sums over each row's central
+        half are two matrix-vector products.
         """
+        spectra = spectra[None, :] if spectra.ndim == 1 else spectra
+        segments = spectra.shape[0]
         lo_all, hi_all = self.bin_range()
-        if offset > lo_all or offset + spectrum.shape[0] < hi_all:
-            raise ValueError(f"spectrum bins {offset}:{offset + spectrum.shape[0]} do not cover "
+        if offset > lo_all or offset + spectra.shape[1] < hi_all:
+            raise ValueError(f"spectrum bins {offset}:{offset + spectra.shape[1]} do not cover "
                              f"the candidate bands' bins {lo_all}:{hi_all}")
+        if not 1 <= segments <= self.max_segments:
+            raise ValueError(f"{segments} segments given, at most {self.max_segments} allowed")
         for first, rows, m in self._groups:
-            z = self._zbuf[:rows * m].reshape(rows, m)
+            total = segments * rows
+            z = self._zbuf[:total * m].reshape(total, m)
             z.fill(0.0)
-            for r in range(rows):
-                lo_bin, hi_bin, _ = self._bins[first + r]
-                np.conjugate(spectrum[lo_bin - offset:hi_bin - offset], out=z[r, :hi_bin - lo_bin])
+            for seg in range(segments):
+                for r in range(rows):
+                    lo_bin, hi_bin, _ = self._bins[first + r]
+                    np.conjugate(spectra[seg, lo_bin - offset:hi_bin - offset],
+                                 out=z[seg * rows + r, :hi_bin - lo_bin])
             fft_inplace(z)
-            # |z|**2 of the whole matrix in three calls (contiguous: no numpy
-            # buffer), then each row's central half, contiguous again
+            # |z|**2 and |z|**4 over the whole matrix (contiguous: no numpy
+            # buffer), then the weighted sums of each row's central half
             flat = z.reshape(-1)
-            p = self._pbuf[:rows * m]
-            p2 = self._p2buf[:rows * m]
+            p = self._pbuf[:total * m]
+            p2 = self._p2buf[:total * m]
             np.multiply(flat.real, flat.real, out=p)
             np.multiply(flat.imag, flat.imag, out=p2)
             p += p2
-            w = self._inv_w2[m]
-            for r in range(rows):
-                c = p[r * m + m // 4:r * m + m // 4 + m // 2]
-                c *= w
-                self._s2[first + r] += float(c.sum())
-                self._s4[first + r] += float(np.dot(c, c))
-            self._n[first:first + rows] += m // 2
+            np.multiply(p, p, out=p2)
+            w, w_sq = self._weights[m]
+            q, half = m // 4, m // 2
+            sums = self._sums[:total]
+            np.matmul(p.reshape(total, m)[:, q:q + half], w, out=sums)
+            for seg in range(segments):
+                self._s2[first:first + rows] += sums[seg * rows:(seg + 1) * rows]
+            np.matmul(p2.reshape(total, m)[:, q:q + half], w_sq, out=sums)
+            for seg in range(segments):
+                self._s4[first:first + rows] += sums[seg * rows:(seg + 1) * rows]
+            self._n[first:first + rows] += segments * half
 
     def kurtosis(self):
         """Spectral kurtosis of each band, ``n S4 / S2**2 - 2`` (0 for noise)."""
