@@ -95,6 +95,8 @@ class BandKurtosis:
         Segment length (segments are Hann-windowed, 50 % overlap).
     bands : list of (float, float)
         Candidate bands in Hz, e.g. from :func:`candidate_bands`.
+    max_segments : int, default 1
+        Most segments one call of :meth:`add` may take (sets the scratch).
     """
 
     def __init__(self, fs, nperseg, bands, max_segments=1):
