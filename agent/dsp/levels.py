@@ -20,8 +20,9 @@ import numpy as np
 __all__ = ["Moments", "rms", "crest_factor", "kurtosis"]
 
 #: Largest squared ratio of a block's mean to its standard deviation for which
-#: the block's central moments are taken from raw power sums (mean 0.1 sigma:
-#: the cancellation costs under 1e-4 of the fourth moment's 16 digits).
+#: the block's central moments are taken from raw power sums (mean at most 0.1
+#: sigma: the terms that convert raw to central sums are a few per cent of the
+#: result, so the cancellation costs less than one digit).
 RAW_SUMS_MAX_MEAN2 = 0.01
 
 
