@@ -488,7 +488,8 @@ class Pipeline:
             vel = velocity_rms_mm_s(psd, self.df_hz, *self.velocity_band_hz,
                                     weight=self._vel_weight[:max(psd.shape[0] - k_lo, 0)])
             levels["velocity_rms_mm_s"] = vel
-            levels["iso_zone"] = iso_zone(vel, p.machine.iso_group, p.machine.support)
+            if math.isfinite(vel):
+                levels["iso_zone"] = iso_zone(vel, p.machine.iso_group, p.machine.support)
             shaft_hz, speed_source = refine_shaft_hz(psd, self.df_hz, nominal, p.machine.speed_search)
             if self._env_segments:
                 amp = envelope_amplitude(self._env_acc, self._env_segments, self._taper_sum,

@@ -17,7 +17,7 @@ __all__ = ["CAUTION", "table", "analysis_report", "bearing_report"]
 
 
 _FLAG_WORDS = {
-    "nonfinite": "invalid samples (NaN or infinity)",
+    "nonfinite": "invalid samples (NaN, infinity or beyond 10^6 m/s²)",
     "clipped": "clipped at the input's full scale: lower the gain or use a less sensitive sensor",
     "flat": "no signal: sensor disconnected, unpowered or broken",
     "dc_offset": "large DC offset: check the sensor bias supply and cable",

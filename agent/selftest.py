@@ -560,7 +560,7 @@ def _flag_text(flag, analysis, mean_m_s2, full_scale_m_s2, overruns):
     if flag == "too_short":
         return f"too short: {analysis.capture_s:.3g} s is less than one analysis segment"
     if flag == "nonfinite":
-        return "non-finite samples (NaN or infinity)"
+        return "invalid samples (NaN, infinity or beyond 10^6 m/s²: check the scaling)"
     if flag == "wrong_rate":
         return "the source runs at another rate than configured"
     return flag

@@ -261,6 +261,27 @@ def test_nonfinite_samples():
     assert quality_pipeline().analyze(x).quality == ("nonfinite",)
 
 
+@pytest.mark.parametrize("scale", [1e5, 1e15, 1e300])
+def test_magnitudes_no_accelerometer_delivers_are_flagged(scale):
+    # common practice: industrial accelerometers stop far below 1e6 m/s²
+    # (~100 000 g); a recording that large is a units or scaling mistake.  It is
+    # flagged like non-finite data, and nothing overflows into a crash
+    x = faulty_recording()
+    a = quality_pipeline().analyze(x / np.abs(x).max() * scale * 20.0)
+    assert a.quality == ("nonfinite",)
+    assert a.findings == ()
+    assert a.levels["iso_zone"] is None
+
+
+def test_a_shock_level_signal_is_still_analysed():
+    # common practice: shock accelerometers measure up to about 10 000 g
+    # (1e5 m/s²); such a signal is analysed, not flagged
+    x = faulty_recording()
+    a = quality_pipeline().analyze(x / np.abs(x).max() * 9e4)
+    assert "nonfinite" not in a.quality
+    assert a.levels["iso_zone"] in ("A", "B", "C", "D")
+
+
 def test_acquisition_flags_suppress_findings():
     x = faulty_recording()
     for flag in ("overrun", "wrong_rate"):

@@ -3,7 +3,8 @@
 :class:`QualityGate` watches the samples as they stream through the pipeline
 and, at the end of a capture, returns the flags that make the capture unfit:
 
-- ``"nonfinite"``: NaN or infinity in the data;
+- ``"nonfinite"``: NaN or infinity in the data, or values beyond
+  ``MAX_VALID_M_S2`` that no accelerometer delivers (a scaling mistake);
 - ``"clipped"``: the converter's full scale was reached (or, with no known
   full scale, the signal sits flat at its extreme value);
 - ``"flat"``: the sensor is silent, disconnected or stuck (RMS below a floor,
@@ -27,6 +28,11 @@ __all__ = ["QualityGate", "FLAGS"]
 
 FLAGS = ("nonfinite", "clipped", "flat", "dc_offset", "too_short", "overrun", "wrong_rate")
 
+#: Larger magnitudes are not acceleration (about 100 000 g, beyond any
+#: accelerometer): a units or scaling mistake, treated like non-finite data.
+#: It also keeps the float32 analysis (fourth powers of half a segment) far
+#: from overflow.
+MAX_VALID_M_S2 = 1e6
 #: Share of the samples at full scale above which a capture counts as clipped.
 CLIP_SHARE = 1e-4
 #: Without a known full scale: repeated extreme values counted as a flat top.
@@ -91,7 +97,8 @@ class QualityGate:
         self.n += nb
         if block_min is None:
             block_min, block_max = float(x.min()), float(x.max())
-        if not (math.isfinite(block_min) and math.isfinite(block_max)):
+        if not (math.isfinite(block_min) and math.isfinite(block_max)) \
+                or max(-block_min, block_max) > MAX_VALID_M_S2:
             self.nonfinite = True
             return
         peak = max(-block_min, block_max)
