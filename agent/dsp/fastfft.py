@@ -3,9 +3,9 @@
 This is the one place that decides which FFT the pipeline runs and in what
 precision:
 
-- :class:`RealSpectrum`: the real FFT of an even-length ``float32`` buffer,
-  computed in place as a half-length complex FFT; the caller then asks for
-  the bin ranges it needs (:meth:`RealSpectrum.bins`).
+- :class:`RealSpectrum`: real FFTs of a batch of even-length ``float32``
+  rows, computed in place as half-length complex FFTs; the caller then asks
+  for the bin ranges it needs (:meth:`RealSpectrum.bins`).
 - :func:`fft_inplace`: forward complex FFT written over its input (one
   vector, or each row of a matrix).
 - :func:`fast_length`: the smallest transform length at least ``n`` with
@@ -34,6 +34,14 @@ complex numbers (even samples real, odd samples imaginary) is transformed in
 place, and any bin of the real FFT follows from two bins of that transform
 ([1]_).  The pipeline needs only the low bins (velocity, speed) and the
 demodulation band, so only those are unpacked, into arrays allocated once.
+(The library still takes and frees its own scratch inside each call; that
+memory is constant and not seen by Python.)
+
+Why batches
+-----------
+``scipy.fft`` vectorises across the rows of a batch rather than within one
+transform: four rows of 32 768 complex points take about 100 us each, one
+row alone about 220 us.  The pipeline windows four segments into one batch.
 
 References
 ----------
