@@ -23,7 +23,7 @@ Sources (named again beside each check):
   Syst. Signal Process. 64-65 (2015) 100-131, Table 2 (fault frequencies as
   multiples of shaft speed), reproduced in github.com/opprud/bearing_dataset,
   file 2_cwru/README.md.
-- [N15] NPTEL course 112103024, module 15, lecture 2, Example 15.2 (pillow
+- [N15] NPTEL course 112103024, module 15, part 2, Example 15.2 (pillow
   block ball bearing of a machinery fault simulator), web page
   archive.nptel.ac.in/content/storage2/courses/112103024/module15/lec2/3.html.
 
@@ -118,9 +118,9 @@ def test_benchmark_motor_bearing_factors(position, balls, ball_in, pitch_in,
     assert o.bsf == pytest.approx(bsf, abs=5e-4)
 
 
-# --------------------------------------------------------------------------- lecture example
+# --------------------------------------------------------------------------- course example
 
-def test_lecture_example_fault_simulator_bearing():
+def test_course_example_fault_simulator_bearing():
     # [N15] Example 15.2 geometry: 8 balls, ball diameter 0.3125 in, pitch
     # diameter 1.319 in, contact angle 0 deg (read in the page text).
     # The resulting multipliers are in the page's Table 15.1, which is an
