@@ -50,10 +50,8 @@ from agent.dsp.spectrum import hann, psd_scale, velocity_rms_mm_s
 from agent.dsp.speed import refine_shaft_hz
 from agent.findings import count_harmonics, judge, search_defect, summary_sentence
 
-__all__ = ["Pipeline", "Analysis", "plan_segment", "MAX_BLOCK"]
+__all__ = ["Pipeline", "Analysis", "plan_segment"]
 
-#: A convenient block size for callers that read a source in blocks (any size works).
-MAX_BLOCK = 8192
 #: Segments whose spectra are kept for the automatic band choice.
 LOOKAHEAD_SEGMENTS = 2
 #: Segments windowed into one batch and transformed together (scipy.fft runs
