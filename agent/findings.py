@@ -50,7 +50,7 @@ DEFECTS = {
 
 
 def _is_local_max(amp, k):
-    return 0 < k < amp.shape[0] - 1 and amp[k] >= amp[k - 1] and amp[k] >= amp[k + 1]
+    return 0 < k < len(amp) - 1 and amp[k] >= amp[k - 1] and amp[k] >= amp[k + 1]
 
 
 def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=None):
@@ -58,8 +58,9 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
 
     Parameters
     ----------
-    amp : ndarray
-        Envelope amplitude spectrum on bins ``k * df_hz``.
+    amp : ndarray or list of float
+        Envelope amplitude spectrum on bins ``k * df_hz`` (an array is read
+        once into a list: the search reads a few bins at a time).
     df_hz : float
         Bin spacing in Hz.
     expected_hz : float
@@ -85,7 +86,8 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
         ``sideband_snr_db``, ``modulation_hz``.  :func:`count_harmonics`
         completes it with ``harmonics`` and ``peak_snr_db``.
     """
-    n_hz = amp.shape[0] * df_hz
+    amp = amp if isinstance(amp, list) else amp.tolist()
+    n_hz = len(amp) * df_hz
     floor_hw = max(0.25 * expected_hz, 8 * df_hz)
     out = {"expected_hz": expected_hz, "found_hz": None, "amplitude": 0.0, "snr_db": 0.0,
            "lines": [], "searched": 0, "sideband_ratio": None, "sideband_snr_db": None,

@@ -518,9 +518,10 @@ class Pipeline:
         freqs = defect_frequencies_hz(p.bearing.orders, shaft_hz)
         plan = {"bpfo": (freqs["bpfo"], shaft_hz), "bpfi": (freqs["bpfi"], shaft_hz),
                 "bsf": (freqs["bsf2"], freqs["ftf"]), "ftf": (freqs["ftf"], None)}
+        values = amp.tolist()  # read once: the searches read a few bins at a time
         out = {}
         for key, (f0, fm) in plan.items():
-            out[key] = search_defect(amp, self.df_hz, f0, p.envelope.harmonics,
+            out[key] = search_defect(values, self.df_hz, f0, p.envelope.harmonics,
                                      p.envelope.tolerance, modulation_hz=fm)
         out["bsf"]["spin_hz"] = freqs["bsf"]
         return count_harmonics(out, shaft_hz, self.df_hz)

@@ -570,3 +570,23 @@ def test_noise_floor_is_the_numpy_median_of_the_neighbourhood():
         lo, hi = max(c - hw, 1), min(c + hw + 1, amp.size)
         ref = np.median(np.concatenate((amp[lo:max(c - 3, lo)], amp[min(c + 4, hi):hi])))
         assert noise_floor(amp, 1.0, center_hz, half_hz) == ref
+        assert noise_floor(amp.tolist(), 1.0, center_hz, half_hz) == ref
+
+
+def test_peak_search_reads_a_list_as_it_reads_the_array():
+    # reference library: numpy.argmax picks the first of equal largest bins;
+    # the searches take the spectrum as an array or as a list, with the same result
+    from agent.dsp.peaks import find_peak
+    from agent.findings import search_defect
+    rng = np.random.default_rng(22)
+    amp = rng.random(600)
+    amp[100:103] = [2.0, 5.0, 5.0]  # a flat top: the first largest bin wins
+    assert find_peak(amp, 1.0, 101.0, 2.0).bin == 101 == int(np.argmax(amp[99:104])) + 99
+    values = amp.tolist()
+    for _ in range(200):
+        target_hz, tol_hz = rng.uniform(1.0, 620.0), rng.uniform(0.1, 20.0)
+        assert find_peak(values, 1.0, target_hz, tol_hz) == find_peak(amp, 1.0, target_hz, tol_hz)
+        fc, fm = rng.uniform(20.0, 300.0), rng.uniform(5.0, 30.0)
+        ref = sideband_ratio(amp, 1.0, fc, fm, 2.0)
+        np.testing.assert_equal(sideband_ratio(values, 1.0, fc, fm, 2.0), ref)
+        assert search_defect(values, 1.0, fc, 8, 0.02, fm) == search_defect(amp, 1.0, fc, 8, 0.02, fm)
