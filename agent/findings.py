@@ -50,7 +50,10 @@ DEFECTS = {
 
 
 def _is_local_max(amp, k):
-    return 0 < k < len(amp) - 1 and amp[k] >= amp[k - 1] and amp[k] >= amp[k + 1]
+    if not 0 < k < len(amp) - 1:
+        return False
+    a, b, c = amp[k - 1:k + 2].tolist() if not isinstance(amp, list) else amp[k - 1:k + 2]
+    return b >= a and b >= c
 
 
 def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=None):
@@ -59,8 +62,7 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
     Parameters
     ----------
     amp : ndarray or list of float
-        Envelope amplitude spectrum on bins ``k * df_hz`` (an array is read
-        once into a list: the search reads a few bins at a time).
+        Envelope amplitude spectrum on bins ``k * df_hz``.
     df_hz : float
         Bin spacing in Hz.
     expected_hz : float
@@ -86,7 +88,6 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
         ``sideband_snr_db``, ``modulation_hz``.  :func:`count_harmonics`
         completes it with ``harmonics`` and ``peak_snr_db``.
     """
-    amp = amp if isinstance(amp, list) else amp.tolist()
     n_hz = len(amp) * df_hz
     floor_hw = max(0.25 * expected_hz, 8 * df_hz)
     out = {"expected_hz": expected_hz, "found_hz": None, "amplitude": 0.0, "snr_db": 0.0,
