@@ -122,6 +122,9 @@ class BandKurtosis:
                 self._groups[-1] = (first, rows + 1, m)
             else:
                 self._groups.append((i, 1, m))
+        # per group: the narrowest band's bins, where every row's zero padding has begun
+        self._pad_from = {first: min(hi - lo for lo, hi, _ in self._bins[first:first + rows])
+                          for first, rows, _ in self._groups}
         if max_segments < 1:
             raise ValueError(f"{max_segments=} must be >= 1")
         self.max_segments = max_segments
@@ -186,7 +189,7 @@ class BandKurtosis:
         for first, rows, m in self._groups:
             total = segments * rows
             z = self._zbuf[:total * m].reshape(total, m)
-            z.fill(0.0)
+            z[:, self._pad_from[first]:] = 0.0  # only the padding: each row's bins are written below
             for seg in range(segments):
                 for r in range(rows):
                     lo_bin, hi_bin, _ = self._bins[first + r]
