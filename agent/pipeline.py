@@ -40,7 +40,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from agent.dsp.bearing import defect_frequencies_hz
-from agent.dsp.envelope import envelope_amplitude, envelope_power_pair, taper_squared_head
+from agent.dsp.envelope import (envelope_amplitude, envelope_power_rows, load_band,
+                                 taper_squared_head)
 from agent.dsp.fastfft import RealSpectrum, fast_length
 from agent.dsp.iso import iso_zone, velocity_band_hz
 from agent.dsp.kurtogram import BandKurtosis, candidate_bands
@@ -57,6 +58,10 @@ LOOKAHEAD_SEGMENTS = 2
 #: Segments windowed into one batch and transformed together (scipy.fft runs
 #: the rows of a batch side by side in SIMD: 2.2x faster per segment).
 BATCH_SEGMENTS = 4
+#: Segments whose envelopes are computed together (their bands in one FFT,
+#: their squared envelopes two to a row in another; four rows cost little
+#: more than two).  Even.
+ENVELOPE_SEGMENTS = 4
 #: Lowest and highest edge of an automatically chosen band, relative limits.
 AUTO_BAND_LOW_HZ = 500.0
 AUTO_BAND_TOP = 0.45  # of the sample rate: clear of the anti-alias filter
@@ -253,10 +258,11 @@ class Pipeline:
         self._psd = np.empty(self.psd_bins)
         self._store = np.empty((LOOKAHEAD_SEGMENTS if self._kurt is not None else 0,
                                 self._cand_hi - self._cand_lo), dtype=np.complex64)
-        # envelopes are computed two segments at a time: the first one's band waits
-        self._pending_band = np.empty(widest, dtype=np.complex64)
-        self._z2 = np.empty(2 * m_max, dtype=np.complex64)
-        self._w = np.empty(m_max, dtype=np.complex64)
+        # envelopes are computed ENVELOPE_SEGMENTS at a time: the bands wait in
+        # the rows of one matrix, shaped for the chosen band's envelope length
+        self._m_max = m_max
+        self._env_zbuf = np.empty(ENVELOPE_SEGMENTS * m_max, dtype=np.complex64)
+        self._env_wbuf = np.empty(ENVELOPE_SEGMENTS // 2 * m_max, dtype=np.complex64)
         self._tmp = np.empty(m_max, dtype=np.float32)
         # the squared taper's DFT bins, per distinct envelope length (a handful at most)
         self._taper_heads = {}
@@ -288,8 +294,10 @@ class Pipeline:
         self.band = band
         lo_bin, hi_bin = self._band_bins(band)
         self._lo_bin, self._hi_bin = lo_bin, hi_bin
-        m = min(_env_len(hi_bin - lo_bin, self.env_bins), self._w.shape[0])
+        m = min(_env_len(hi_bin - lo_bin, self.env_bins), self._m_max)
         self._m = m
+        self._env_z = self._env_zbuf[:ENVELOPE_SEGMENTS * m].reshape(ENVELOPE_SEGMENTS, m)
+        self._env_w = self._env_wbuf[:ENVELOPE_SEGMENTS // 2 * m].reshape(ENVELOPE_SEGMENTS // 2, m)
         self._taper_head = self._taper_heads[m]
         self._taper_sum = float(self._taper_head[0].real)
 
@@ -302,7 +310,7 @@ class Pipeline:
         self._have_first = False  # the other half holds the first half of a segment
         self._segments = 0
         self._env_segments = 0
-        self._pending = False
+        self._env_rows = 0   # bands waiting in the envelope matrix
         self._stored = 0
         self._psd_acc[:] = 0.0
         self._env_acc[:] = 0.0
@@ -416,20 +424,21 @@ class Pipeline:
         self._stored = 0
 
     def _envelope(self, band):
-        """One segment's band bins: kept until the next one, then both envelopes."""
-        nb = band.shape[0]
-        if not self._pending:
-            self._pending_band[:nb] = band
-            self._pending = True
-            return
-        self._envelope_pair(self._pending_band[:nb], band)
+        """One segment's band bins: loaded into the envelope matrix, whose rows
+        are transformed together once it is full."""
+        load_band(band, self.nperseg, self._env_z[self._env_rows])
+        self._env_rows += 1
+        if self._env_rows == ENVELOPE_SEGMENTS:
+            self._flush_envelopes()
 
-    def _envelope_pair(self, band_a, band_b):
-        m = self._m
-        envelope_power_pair(band_a, band_b, self.nperseg, self._taper_head,
-                            self._z2[:2 * m].reshape(2, m), self._w[:m], self._tmp, self._env_acc)
-        self._env_segments += 1 if band_b is None else 2
-        self._pending = False
+    def _flush_envelopes(self):
+        rows = self._env_rows
+        if not rows:
+            return
+        envelope_power_rows(self._env_z, rows, self._hi_bin - self._lo_bin, self._taper_head,
+                            self._env_w, self._tmp, self._env_acc)
+        self._env_segments += rows
+        self._env_rows = 0
 
     # ------------------------------------------------------------------ result
     def finish(self, extra_flags=()):
@@ -451,8 +460,7 @@ class Pipeline:
         self._flush_batch()
         if self.band is None and self._stored:
             self._choose_band()
-        if self._pending:  # an odd segment out
-            self._envelope_pair(self._pending_band[:self._hi_bin - self._lo_bin], None)
+        self._flush_envelopes()  # the segments left over
         mom = self._moments
         flags = self._gate.flags(mom.mean, mom.rms, mom.max - mom.min if mom.n else 0.0,
                                  self.nperseg)
@@ -518,10 +526,9 @@ class Pipeline:
         freqs = defect_frequencies_hz(p.bearing.orders, shaft_hz)
         plan = {"bpfo": (freqs["bpfo"], shaft_hz), "bpfi": (freqs["bpfi"], shaft_hz),
                 "bsf": (freqs["bsf2"], freqs["ftf"]), "ftf": (freqs["ftf"], None)}
-        values = amp.tolist()  # read once: the searches read a few bins at a time
         out = {}
         for key, (f0, fm) in plan.items():
-            out[key] = search_defect(values, self.df_hz, f0, p.envelope.harmonics,
+            out[key] = search_defect(amp, self.df_hz, f0, p.envelope.harmonics,
                                      p.envelope.tolerance, modulation_hz=fm)
         out["bsf"]["spin_hz"] = freqs["bsf"]
         return count_harmonics(out, shaft_hz, self.df_hz)

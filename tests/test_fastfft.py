@@ -75,27 +75,31 @@ def test_envelope_power_equals_the_time_domain_recipe():
     np.testing.assert_allclose(acc, ref, rtol=0, atol=1e-5 * ref.max())
 
 
-@pytest.mark.parametrize("lone", [False, True])
-def test_envelope_power_pair_equals_two_single_segments(lone):
+@pytest.mark.parametrize("rows", [1, 2, 3, 4])
+def test_envelope_power_rows_equals_single_segments(rows):
     # reference: band_analytic + envelope_power per segment, themselves checked
     # against scipy.signal.hilbert and numpy.fft.rfft; two real sequences in one
     # complex FFT: Brigham 1988, sec. 9.3
-    from agent.dsp.envelope import band_analytic, envelope_power_pair
+    from agent.dsp.envelope import band_analytic, envelope_power_rows, load_band
     nperseg, nb, m, k = 4096, 700, 1080, 300
-    rng = np.random.default_rng(11 + lone)
+    rng = np.random.default_rng(11 + rows)
     bands = [(rng.standard_normal(nb) + 1j * rng.standard_normal(nb)).astype(np.complex64) * 900
-             for _ in range(2)]
+             for _ in range(rows)]
     ref = np.zeros(k)
-    for band in bands[:1] if lone else bands:
+    for band in bands:
         z = band_analytic(band, nperseg, 0, nb, np.empty(m, np.complex64))
         envelope_power(z, taper_squared_head(m), RealSpectrum(m, k), np.empty(m, np.float32),
                        np.empty(k, np.complex64), ref)
+    z = np.full((4, m), np.nan, np.complex64)  # anything left in the scratch is overwritten
+    w = np.full((2, m), np.nan, np.complex64)
+    for r, band in enumerate(bands):
+        load_band(band, nperseg, z[r])
     acc = np.zeros(k)
-    envelope_power_pair(bands[0], None if lone else bands[1], nperseg, taper_squared_head(m),
-                        np.empty((2, m), np.complex64), np.empty(m, np.complex64),
-                        np.empty(m, np.float32), acc)
+    envelope_power_rows(z, rows, nb, taper_squared_head(m), w, np.empty(m, np.float32), acc)
     np.testing.assert_allclose(acc[1:], ref[1:], rtol=0, atol=1e-5 * ref.max())
     assert abs(acc[0]) <= 1e-5 * ref.max()
+    with pytest.raises(ValueError):
+        envelope_power_rows(z, 5, nb, taper_squared_head(m), w, np.empty(m, np.float32), acc)
 
 
 def test_fast_length_is_the_smallest_5_smooth_multiple():

@@ -11,8 +11,9 @@ the impacts (the defect frequency) and its harmonics.
   squared envelope (``hann**2`` on the decimated grid), and
   :func:`taper_squared_head`: its three non-zero DFT bins.
 - :func:`envelope_power`: one segment's contribution to the averaged
-  squared-envelope power spectrum; :func:`envelope_power_pair`: two
-  segments' at once, from their band bins (what the pipeline runs).
+  squared-envelope power spectrum; :func:`envelope_power_rows`: several
+  segments' at once, from their band bins loaded by :func:`load_band` (what
+  the pipeline runs).
 - :func:`envelope_amplitude`: averaged power to line amplitudes.
 
 Every function writes into arrays given by the caller, so the pipeline
@@ -36,7 +37,7 @@ import numpy as np
 from agent.dsp.fastfft import fft_inplace
 
 __all__ = ["band_analytic", "taper_squared", "taper_squared_head", "envelope_power",
-           "envelope_power_pair", "envelope_amplitude"]
+           "load_band", "envelope_power_rows", "envelope_amplitude"]
 
 
 def band_analytic(spectrum, nperseg, lo_bin, hi_bin, out):
@@ -170,28 +171,46 @@ def envelope_power(z, head, spectrum, tmp, bins, acc):
     acc += wide
 
 
-def envelope_power_pair(band_a, band_b, nperseg, head, z2, w, tmp, acc):
-    """Add two segments' squared-envelope power spectra to ``acc`` at once.
-
-    The same result as :func:`band_analytic` and :func:`envelope_power` for
-    each segment, with fewer and cheaper transforms: both bands go through
-    one two-row FFT, and the two real squared envelopes through one complex
-    FFT.
+def load_band(band, nperseg, row):
+    """Copy a segment's band bins into a row of :func:`envelope_power_rows`'s
+    matrix, scaled by ``2 / nperseg`` (so that ``|analytic| = a`` for a tone
+    of amplitude ``a``, as in :func:`band_analytic`).
 
     Parameters
     ----------
-    band_a, band_b : ndarray, complex
-        The demodulation band's bins of two segment spectra (``rfft`` of the
-        Hann-windowed segments), of equal length ``nb``; ``band_b`` may be
-        ``None`` for a lone segment.
+    band : ndarray, complex, length nb
+        The demodulation band's bins of one segment spectrum.
     nperseg : int
         Segment length.
+    row : ndarray, complex64, length m >= nb
+        A row of the matrix; its first ``nb`` entries are written.
+    """
+    np.multiply(band, 2.0 / nperseg, out=row[:band.shape[0]])
+
+
+def envelope_power_rows(z, rows, nb, head, w, tmp, acc):
+    """Add several segments' squared-envelope power spectra to ``acc`` at once.
+
+    The same result as :func:`band_analytic` and :func:`envelope_power` for
+    each segment, with fewer and cheaper transforms: all bands go through one
+    FFT of ``rows`` rows, and the real squared envelopes, two to a row,
+    through one complex FFT of half as many rows (``scipy.fft`` runs the rows
+    of a matrix side by side: four rows cost little more than two).
+
+    Parameters
+    ----------
+    z : ndarray, complex64, shape (R, m), C-contiguous
+        Rows ``0 .. rows - 1`` hold, in their first ``nb`` entries, one
+        segment's band bins loaded by :func:`load_band`; the matrix is used
+        up.
+    rows : int
+        Segments loaded, ``1 <= rows <= R``.
+    nb : int
+        Band bins per row, ``nb <= m``.
     head : ndarray, complex64, length 3
         :func:`taper_squared_head` of ``m``.
-    z2 : ndarray, complex64, shape (2, m), C-contiguous
-        Scratch for the two analytic signals; ``m >= nb``.
-    w : ndarray, complex64, length m, contiguous
-        Scratch for the two squared envelopes.
+    w : ndarray, complex64, shape (P, m), C-contiguous, ``P >= (rows + 1) // 2``
+        Scratch for the squared envelopes.
     tmp : ndarray, float32, length >= m
         Scratch.
     acc : ndarray, float64, length K, ``3 <= K <= m // 2 + 1``
@@ -199,56 +218,56 @@ def envelope_power_pair(band_a, band_b, nperseg, head, z2, w, tmp, acc):
 
     Notes
     -----
-    - Each band is scaled by ``2 / nperseg`` as it is copied and transformed
-      forwards without conjugation: the result is the analytic signal
-      reversed in time (``fft(X) = m ifft(X)`` at ``-t``).  The reversal
-      changes neither the envelope's values nor its power spectrum, and the
-      squared Hann taper is symmetric, so the mean removal is unchanged.
+    - The bands are transformed forwards without conjugation: the result is
+      the analytic signal reversed in time (``fft(X) = m ifft(X)`` at
+      ``-t``).  The reversal changes neither the envelope's values nor its
+      power spectrum, and the squared Hann taper is symmetric, so the mean
+      removal is unchanged.
     - Two real sequences in one complex FFT: with ``W = fft(a + 1j b)``,
       ``A = (W[k] + conj(W[-k])) / 2`` and ``B = (W[k] - conj(W[-k])) / 2j``,
       hence ``|A[k]|**2 + |B[k]|**2 = (|W[k]|**2 + |W[-k]|**2) / 2`` (Brigham
-      1988, sec. 9.3): the summed power needs no separation.
+      1988, sec. 9.3): the summed power needs no separation.  An odd segment
+      out shares its row with zeros.
     - The means are removed on the spectrum as in :func:`envelope_power`,
       with ``c = W[0] / sum(taper)`` holding both segments' means (real and
       imaginary part) and subtracted at bins 0, +-1, +-2.
+    - Every operation works on one contiguous row or a 1-D view of one, so
+      numpy needs no hidden buffer.
     """
-    nb = band_a.shape[0]
-    m = w.shape[0]
+    m = z.shape[1]
+    pairs = (rows + 1) // 2
     k = acc.shape[0]
-    if z2.shape != (2, m) or nb > m or not 3 <= k <= m // 2 + 1 or tmp.shape[0] < m \
-            or (band_b is not None and band_b.shape[0] != nb):
-        raise ValueError(f"bands of {nb} bins, scratch {z2.shape} and {m}, {k} bins do not fit")
-    scale = 2.0 / nperseg
-    np.multiply(band_a, scale, out=z2[0, :nb])
-    if band_b is None:
-        z2[1, :nb] = 0.0
-    else:
-        np.multiply(band_b, scale, out=z2[1, :nb])
-    z2[:, nb:] = 0.0
-    fft_inplace(z2)
+    if not 1 <= rows <= z.shape[0] or nb > m or w.shape[0] < pairs or w.shape[1] != m \
+            or not 3 <= k <= m // 2 + 1 or tmp.shape[0] < m:
+        raise ValueError(f"{rows} rows of {nb} bins, scratch {z.shape} and {w.shape}, {k} bins "
+                         f"do not fit")
+    z[:rows, nb:] = 0.0
+    fft_inplace(z[:rows] if rows > 1 else z[0])
     t = tmp[:m]
-    for row, part in ((z2[0], w.real), (z2[1], w.imag)):
-        np.multiply(row.real, row.real, out=part)
-        np.multiply(row.imag, row.imag, out=t)
+    for r in range(rows):
+        part = w[r // 2].imag if r % 2 else w[r // 2].real
+        np.multiply(z[r].real, z[r].real, out=part)
+        np.multiply(z[r].imag, z[r].imag, out=t)
         part += t
-    fft_inplace(w)
-    c = w[0] / head[0].real
-    w[:3] -= c * head
-    w[m - 2:] -= c * head[2:0:-1]
-    # (|W[k]|^2 + |W[m-k]|^2) / 2 for k = 1 .. K-1; bin 0 holds no line
-    top = w[1:k]
-    mirror = w[m - k + 1:][::-1]
+    if rows % 2:
+        w[pairs - 1].imag[:] = 0.0
+    fft_inplace(w[:pairs] if pairs > 1 else w[0])
+    # (|W[k]|^2 + |W[m-k]|^2) / 2 for k = 1 .. K-1, summed over the rows; bin 0 holds no line
     p = tmp[:k - 1]
     q = tmp[m - k + 1:m]  # apart from p: k <= m // 2 + 1
-    np.multiply(top.real, top.real, out=p)
-    np.multiply(top.imag, top.imag, out=q)
-    p += q
-    np.multiply(mirror.real, mirror.real, out=q)
-    p += q
-    np.multiply(mirror.imag, mirror.imag, out=q)
-    p += q
+    p[:] = 0.0
+    for i in range(pairs):
+        row = w[i]
+        c = row[0] / head[0].real
+        row[:3] -= c * head
+        row[m - 2:] -= c * head[2:0:-1]
+        top = row[1:k]
+        mirror = row[m - k + 1:][::-1]
+        for part in (top.real, top.imag, mirror.real, mirror.imag):
+            np.multiply(part, part, out=q)
+            p += q
     p *= 0.5
-    wide = w[:k - 1].view(np.float64)  # w is used up: its 8-byte items hold the float64 copy
+    wide = w[0, :k - 1].view(np.float64)  # w is used up: its 8-byte items hold the float64 copy
     wide[:] = p
     acc[1:k] += wide
 
