@@ -50,10 +50,7 @@ DEFECTS = {
 
 
 def _is_local_max(amp, k):
-    if not 0 < k < len(amp) - 1:
-        return False
-    a, b, c = amp[k - 1:k + 2].tolist() if not isinstance(amp, list) else amp[k - 1:k + 2]
-    return b >= a and b >= c
+    return 0 < k < len(amp) - 1 and amp[k] >= amp[k - 1] and amp[k] >= amp[k + 1]
 
 
 def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=None):
