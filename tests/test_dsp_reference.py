@@ -573,6 +573,16 @@ def test_noise_floor_is_the_numpy_median_of_the_neighbourhood():
         assert noise_floor(amp.tolist(), 1.0, center_hz, half_hz) == ref
 
 
+def test_list_median_is_the_numpy_median():
+    # reference library: numpy.median (odd and even counts, one value, ties)
+    from agent.dsp.peaks import list_median
+    rng = np.random.default_rng(23)
+    for size in (1, 2, 3, 8, 31, 64):
+        v = rng.random(size)
+        assert list_median(v.tolist()) == np.median(v)
+    assert list_median([2.0, 1.0, 2.0, 5.0]) == np.median([2.0, 1.0, 2.0, 5.0]) == 2.0
+
+
 def test_peak_search_reads_a_list_as_it_reads_the_array():
     # reference library: numpy.argmax picks the first of equal largest bins;
     # the searches take the spectrum as an array or as a list, with the same result

@@ -7,9 +7,10 @@
 from __future__ import annotations
 
 import math
-import statistics
 
 import numpy as np
+
+from agent.dsp.peaks import list_median
 
 __all__ = ["refine_shaft_hz"]
 
@@ -63,8 +64,8 @@ def refine_shaft_hz(psd, df_hz, nominal_hz, search, min_prominence_db=10.0):
     k = lo + int(np.argmax(psd[lo:hi]))
     ctx_lo = max(int(nominal_hz * 0.5 / df_hz), 1)
     ctx_hi = min(int(nominal_hz * 1.5 / df_hz) + 1, n)
-    context = psd[ctx_lo:ctx_hi].tolist()  # a few dozen bins: a list's median is cheaper
-    floor = statistics.median(context) if context else 0.0
+    context = psd[ctx_lo:ctx_hi].tolist()
+    floor = list_median(context) if context else 0.0
     if not (psd[k] > 0 and floor > 0) or 10.0 * math.log10(psd[k] / floor) < min_prominence_db:
         return float(nominal_hz), "nominal"
     a, b, c = (math.log(max(psd[k + j], 1e-300)) for j in (-1, 0, 1))
