@@ -196,6 +196,19 @@ def test_streaming_equals_whole_array(sizes):
     assert mom.crest_factor == pytest.approx(crest_factor(x), rel=1e-9)
 
 
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_a_constant_signal_has_no_peak(dtype):
+    # definition: a constant has no excursion from its mean (peak 0, crest factor 0),
+    # however the block means round; its RMS is 0 to the rounding of the block sums
+    value = 0.0078125 * 3.3
+    mom = Moments(8192, dtype=dtype)
+    for _ in range(7):
+        mom.add(np.full(8192, value, dtype=dtype))
+    mom.add(np.full(100, value, dtype=dtype))
+    assert mom.peak == 0.0 and mom.crest_factor == 0.0
+    assert mom.rms <= 64 * np.finfo(dtype).eps * value
+
+
 def test_moments_refuses_oversized_block():
     with pytest.raises(ValueError):
         Moments(0)

@@ -145,7 +145,8 @@ class Moments:
         """Largest absolute excursion from the mean."""
         if not self.n:
             return 0.0
-        return max(self.max - self.mean, self.mean - self.min)
+        mean = min(max(self.mean, self.min), self.max)  # rounding may put it outside: 0 for a constant
+        return max(self.max - mean, mean - self.min)
 
     @property
     def crest_factor(self):
