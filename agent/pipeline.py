@@ -295,7 +295,6 @@ class Pipeline:
         lo_bin, hi_bin = self._band_bins(band)
         self._lo_bin, self._hi_bin = lo_bin, hi_bin
         m = min(_env_len(hi_bin - lo_bin, self.env_bins), self._m_max)
-        self._m = m
         self._env_z = self._env_zbuf[:ENVELOPE_SEGMENTS * m].reshape(ENVELOPE_SEGMENTS, m)
         self._env_w = self._env_wbuf[:ENVELOPE_SEGMENTS // 2 * m].reshape(ENVELOPE_SEGMENTS // 2, m)
         self._taper_head = self._taper_heads[m]
