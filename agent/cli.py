@@ -25,6 +25,7 @@ import os
 import sys
 
 from agent import __version__
+from agent.allocator import keep_freed_memory
 from agent.errors import BallpassError, ConfigError, UsageError
 
 __all__ = ["main", "build_parser"]
@@ -293,6 +294,7 @@ def single_threaded_blas():
 def main(argv=None):
     """Entry point; returns the exit code."""
     single_threaded_blas()
+    keep_freed_memory()
     args = build_parser().parse_args(argv)
     try:
         return _COMMANDS[args.command](args)
