@@ -26,7 +26,8 @@ Public API
 from __future__ import annotations
 
 import ctypes
-import platform
+import os
+import sys
 
 __all__ = ["keep_freed_memory", "MMAP_THRESHOLDS_BYTES"]
 
@@ -59,7 +60,7 @@ def keep_freed_memory():
 
 
 def _apply():
-    if platform.system() != "Linux" or platform.libc_ver()[0] != "glibc":
+    if not sys.platform.startswith("linux") or not _glibc():
         return 0
     try:
         mallopt = ctypes.CDLL(None).mallopt
@@ -73,3 +74,11 @@ def _apply():
             mallopt(_M_TRIM_THRESHOLD, 2 * threshold)
             return threshold
     return 0
+
+
+def _glibc():
+    """True when the C library is glibc (it names itself in ``confstr``)."""
+    try:
+        return (os.confstr("CS_GNU_LIBC_VERSION") or "").startswith("glibc")
+    except (ValueError, OSError, AttributeError):
+        return False
