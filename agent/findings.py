@@ -15,6 +15,9 @@ Rules (all thresholds are module constants, documented here):
 - a defect signature is present when its fundamental stands out by at least
   ``FUNDAMENTAL_SNR_DB`` and at least ``MIN_HARMONICS`` unambiguous harmonics
   (the fundamental included) stand out;
+- the sideband ratio is measured only around a fundamental that stands out
+  (``HARMONIC_SNR_DB``): beside a line lost in the floor it would be a ratio
+  of noise to noise, often well above 1, and is reported as ``None``;
 - the signature is *modulated* when the sideband ratio at the fundamental is
   at least ``SIDEBAND_RATIO_MIN`` and one sideband stands out;
 - severity: ``high`` from ``HIGH_SNR_DB`` or ``HIGH_HARMONICS`` harmonics,
@@ -73,7 +76,8 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
         harmonics of a slipping bearing stay exact multiples of its actual
         rate).
     modulation_hz : float, optional
-        Sideband spacing to measure around the fundamental.
+        Sideband spacing to measure around the fundamental, when the
+        fundamental stands out by ``HARMONIC_SNR_DB``.
 
     Returns
     -------
@@ -106,7 +110,7 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
             if s >= HARMONIC_SNR_DB:
                 base = pk.freq_hz
         out["lines"].append((h, pk.freq_hz, pk.amplitude, s))
-    if out["found_hz"] is not None and modulation_hz:
+    if out["found_hz"] is not None and modulation_hz and out["snr_db"] >= HARMONIC_SNR_DB:
         fc = out["found_hz"]
         ratio, lower, upper = sideband_ratio(amp, df_hz, fc, modulation_hz,
                                              0.25 * tolerance * fc + 1.5 * df_hz)

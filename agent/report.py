@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import textwrap
 
-from agent.findings import DEFECTS
+from agent.findings import DEFECTS, HARMONIC_SNR_DB
 from agent.safety import CAUTION
 
 __all__ = ["CAUTION", "table", "analysis_report", "bearing_report"]
@@ -101,6 +101,8 @@ def analysis_report(d, source=""):
         out += ["  " + line for line in table(
             ("defect", "expected Hz", "found Hz", "amplitude", "SNR dB", "harmonics", "sideband ratio"),
             rows).splitlines()]
+        out.append(f"  sideband ratio = (lower + upper sideband) / line, shown where the line stands "
+                   f"{HARMONIC_SNR_DB:g} dB above the floor")
         out.append("")
 
     out.append("Findings")

@@ -449,6 +449,25 @@ def test_sideband_ratio_is_modulation_depth(m):
     assert lower == pytest.approx(upper, rel=0.02)
 
 
+def test_no_sideband_ratio_around_a_fundamental_lost_in_the_floor():
+    # common practice: a sideband ratio describes the modulation of a line; with
+    # no line at the defect frequency there is nothing to describe.  The same
+    # amplitude-modulated line as above (depth 0.5, from memory: ratio = depth),
+    # once present and once replaced by the noise floor alone.
+    from agent.findings import search_defect
+    rng = np.random.default_rng(5)
+    df, fc, fm = 0.5, 100.0, 10.0
+    floor = 1e-3 * (1.0 + 0.2 * rng.random(4000))
+    amp = floor.copy()
+    for f, a in ((fc, 1.0), (fc - fm, 0.25), (fc + fm, 0.25)):
+        amp[int(f / df)] = a
+    with_line = search_defect(amp, df, fc, 3, 0.02, modulation_hz=fm)
+    assert with_line["sideband_ratio"] == pytest.approx(0.5)
+    only_floor = search_defect(floor, df, fc, 3, 0.02, modulation_hz=fm)
+    assert only_floor["found_hz"] is not None and only_floor["snr_db"] < 6.0
+    assert only_floor["sideband_ratio"] is None and only_floor["sideband_snr_db"] is None
+
+
 def test_sideband_ratio_bad_input():
     amp = np.ones(1000)
     with pytest.raises(ValueError):
