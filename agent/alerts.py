@@ -457,4 +457,7 @@ def _modulation_words(key, modulation):
         return " with sidebands at cage speed"
     if key == "bpfo":
         return " without sidebands: a steady load zone, as under gravity load"
+    if key == "bpfi":
+        return (" without sidebands: the load turns with the inner race, as a dominant "
+                "unbalance does")
     return ""

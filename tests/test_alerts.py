@@ -227,6 +227,23 @@ def test_rolling_element_text_names_the_defect_rate():
     assert "cage carries the damaged element" in change.text
 
 
+def test_inner_race_text_says_what_even_impacts_mean():
+    # facts of the trade (load-zone modulation): a load that turns with the shaft
+    # (unbalance) strikes an inner-race defect equally on every turn, so no 1x
+    # sidebands; a stationary load zone modulates it at 1x
+    point, settings = make(raise_after=1, baseline_captures=0)
+    defects = capture()["defects"]
+    defects["bpfi"] = {"expected_hz": 119.4, "found_hz": 119.5, "amplitude": 0.3, "snr_db": 24.0,
+                       "harmonics": 6, "sideband_ratio": 0.05, "modulation_hz": 24.7}
+    texts = {}
+    for modulation in ("none", "shaft"):
+        engine = AlertEngine(point, settings, None)
+        finding = {"defect": "bpfi", "severity": "high", "modulation": modulation, "text": "x"}
+        texts[modulation] = engine.update(capture(defects=defects, findings=[finding])).text
+    assert "without sidebands: the load turns with the inner race" in texts["none"]
+    assert "through the load zone once per turn" in texts["shaft"]
+
+
 # -------------------------------------------------------------- baseline
 def test_baseline_learnt_as_median_and_persisted(tmp_path):
     point, settings = make(raise_after=1, clear_after=1, baseline_captures=5,
