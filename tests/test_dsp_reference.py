@@ -451,9 +451,10 @@ def test_sideband_ratio_is_modulation_depth(m):
 
 def test_no_sideband_ratio_around_a_fundamental_lost_in_the_floor():
     # common practice: a sideband ratio describes the modulation of a line; with
-    # no line at the defect frequency there is nothing to describe.  The same
-    # amplitude-modulated line as above (depth 0.5, from memory: ratio = depth),
-    # once present and once replaced by the noise floor alone.
+    # no line at the defect frequency there is nothing to describe.  A line
+    # amplitude-modulated to depth 0.5 (from memory, trigonometry: each sideband
+    # is m/2 of the carrier, so the ratio is m), once present and once absent,
+    # leaving the noise floor alone.
     from agent.findings import search_defect
     rng = np.random.default_rng(5)
     df, fc, fm = 0.5, 100.0, 10.0
