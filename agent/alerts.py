@@ -49,6 +49,7 @@ from collections import deque
 from dataclasses import dataclass, field
 
 from agent.baseline import DEFECT_KEYS
+from agent.findings import DEFECTS, modulation_meaning
 from agent.dsp.iso import zone_limits_mm_s
 from agent.safety import CAUTION
 
@@ -63,12 +64,7 @@ _MIN_ACT_HARMONICS = 3
 
 
 #: defect key -> (plain name of the damaged part, frequency label)
-DEFECT_NAMES = {
-    "bpfo": ("Outer-race", "BPFO"),
-    "bpfi": ("Inner-race", "BPFI"),
-    "bsf": ("Rolling-element", "2xBSF"),
-    "ftf": ("Cage", "FTF"),
-}
+DEFECT_NAMES = {key: (what, label) for key, (label, what, _) in DEFECTS.items()}
 
 # (label, unit) of the level indicators, for the plain-words text.
 _LABELS = {
@@ -395,7 +391,8 @@ class AlertEngine:
             freq = _num(d.get("expected_hz"))
         freq_words = f"{label} {freq:.3g} Hz" if freq is not None else label
         plural = "harmonic" if harmonics == 1 else "harmonics"
-        modulation = finding.get("modulation", "none")
+        meaning = modulation_meaning(key, finding.get("modulation", "none"))
+        meaning = f" {meaning}" if meaning else ""
         s = self.settings
 
         def describe(level, held, limit):
@@ -405,7 +402,7 @@ class AlertEngine:
             else:
                 rule = f"watch from {s.defect_watch_snr_db:g} dB"
             return (f"{part} defect signature ({freq_words}, {harmonics} {plural}, {snr:.0f} dB "
-                    f"over the noise floor){_modulation_words(key, modulation)} ({rule})."
+                    f"over the noise floor){meaning}; {rule}."
                     + self._hold_text(held, limit, " dB"))
         return describe
 
@@ -439,25 +436,3 @@ class AlertEngine:
         text = " ".join([head] + [r["text"] for r in reasons])
         return AlertChange(point=name, state=self._state, previous=previous,
                            reasons=reasons, text=text, caution=CAUTION)
-
-
-def _modulation_words(key, modulation):
-    """What the sidebands (or their absence) say about the load."""
-    if modulation == "shaft":
-        if key == "bpfo":
-            return " with sidebands at shaft speed: the load turns with the shaft, typically unbalance"
-        if key == "bpfi":
-            return (" with sidebands at shaft speed: the inner race carries the damage through "
-                    "the load zone once per turn")
-        return " with sidebands at shaft speed"
-    if modulation == "cage":
-        if key == "bsf":
-            return (" with sidebands at cage speed: the cage carries the damaged element "
-                    "through the load zone")
-        return " with sidebands at cage speed"
-    if key == "bpfo":
-        return " without sidebands: a steady load zone, as under gravity load"
-    if key == "bpfi":
-        return (" without sidebands: the load turns with the inner race, as a dominant "
-                "unbalance does")
-    return ""

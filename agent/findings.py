@@ -32,7 +32,8 @@ import math
 
 from agent.dsp.peaks import find_peak, noise_floor, sideband_ratio, snr_db
 
-__all__ = ["DEFECTS", "search_defect", "count_harmonics", "judge", "summary_sentence"]
+__all__ = ["DEFECTS", "search_defect", "count_harmonics", "judge", "summary_sentence",
+           "modulation_meaning"]
 
 HARMONIC_SNR_DB = 6.0
 FUNDAMENTAL_SNR_DB = 10.0
@@ -244,29 +245,49 @@ def _modulated(ev):
 
 _MEANING = {
     ("bpfo", "shaft"): ("with sidebands at shaft speed: the impacts swell and fade once per "
-                        "turn, so the load turns with the shaft, typically unbalance."),
+                        "turn, so the load turns with the shaft, typically unbalance"),
     ("bpfo", "none"): ("evenly spaced with no shaft-rate sidebands: the load stays put "
-                       "(gravity, the load zone), as usual for an outer-race defect."),
+                       "(gravity, the load zone), as usual for an outer-race defect"),
     ("bpfi", "shaft"): ("with sidebands at shaft speed: the defect turns with the shaft through "
-                        "a stationary load zone (shaft weight, belt pull)."),
+                        "a stationary load zone (shaft weight, belt pull)"),
     ("bpfi", "none"): ("evenly spaced with no shaft-rate sidebands: the load turns with the "
-                       "inner race, as a dominant unbalance does."),
+                       "inner race, as a dominant unbalance does"),
     ("bsf", "cage"): ("with sidebands at the cage rate (FTF): a damaged rolling element is "
-                      "carried through the load zone once per cage turn."),
-    ("bsf", "none"): "with no cage-rate sidebands.",
-    ("ftf", "none"): "at the cage rate: a worn or broken cage, or a rolling element defect.",
+                      "carried through the load zone once per cage turn"),
+    ("bsf", "none"): "with no cage-rate sidebands",
+    ("ftf", "none"): "at the cage rate: a worn or broken cage, or a rolling element defect",
 }
+
+
+def modulation_meaning(key, modulation):
+    """What the sidebands of a defect's lines, or their absence, say about the load.
+
+    The one wording of it, used by the findings and by the alert reasons.
+
+    Parameters
+    ----------
+    key : str
+        ``"bpfo"``, ``"bpfi"``, ``"bsf"`` or ``"ftf"``.
+    modulation : str
+        ``"shaft"``, ``"cage"`` or ``"none"`` (a finding's ``modulation``).
+
+    Returns
+    -------
+    str
+        A clause without a final full stop, e.g. "with sidebands at shaft
+        speed: ..."; empty for a combination with nothing to say.
+    """
+    return _MEANING.get((key, modulation if modulation in ("shaft", "cage") else "none"), "")
 
 
 def _text(key, ev, modulation, severity):
     label, what, _ = DEFECTS[key]
-    mod_word = "shaft" if modulation == "shaft" else ("cage" if modulation == "cage" else "none")
-    meaning = _MEANING.get((key, mod_word), "")
+    meaning = modulation_meaning(key, modulation)
     strength = {"low": "Weak", "medium": "Clear", "high": "Strong"}[severity]
     found = ev["found_hz"] if ev["found_hz"] is not None else ev["expected_hz"]
     return (f"{strength} {what.lower()} defect signature at {found:.1f} Hz ({label}, "
             f"{ev['harmonics']} of {ev['searched']} harmonics, {ev['peak_snr_db']:.0f} dB above "
-            f"the noise floor), {meaning}")
+            f"the noise floor), {meaning}.")
 
 
 def judge(evidence, flagged):

@@ -14,6 +14,7 @@ from agent.alerts import ACT, CAUTION, NORMAL, WATCH, AlertChange, AlertEngine, 
 from agent.baseline import BASELINE_INDICATORS, BaselineStore, reset_baselines
 from agent.config import parse_config
 from agent.dsp.iso import iso_zone
+from agent.findings import modulation_meaning
 
 POINT = "raw-water-pump-2-de"
 
@@ -206,8 +207,8 @@ def test_defect_evidence_watch_and_act_rules():
     change = engine.update(capture(defects=bpfo_defects(18.2, 5), findings=[BPFO_FINDING]))
     assert change.state == WATCH and change.reasons[0]["limit"] == 10.0
     assert ("Outer-race defect signature (BPFO 78.9 Hz, 5 harmonics, 18 dB over the noise floor) "
-            "with sidebands at shaft speed: the load turns with the shaft, typically unbalance"
-            in change.text)
+            "with sidebands at shaft speed: the impacts swell and fade once per turn, so the load "
+            "turns with the shaft, typically unbalance; watch from 10 dB" in change.text)
     change = engine.update(capture(defects=bpfo_defects(22.0, 5), findings=[BPFO_FINDING]))
     assert change.state == ACT
     assert change.reasons[0] == {**change.reasons[0], "indicator": "bpfo_snr_db",
@@ -224,7 +225,7 @@ def test_rolling_element_text_names_the_defect_rate():
     change = engine.update(capture(defects=defects, findings=[finding]))
     # the rolling-element defect repeats at 2 x the ball spin frequency (bearing.py convention)
     assert "Rolling-element defect signature (2xBSF 66.2 Hz" in change.text
-    assert "cage carries the damaged element" in change.text
+    assert "a damaged rolling element is carried through the load zone" in change.text
 
 
 def test_inner_race_text_says_what_even_impacts_mean():
@@ -240,8 +241,11 @@ def test_inner_race_text_says_what_even_impacts_mean():
         engine = AlertEngine(point, settings, None)
         finding = {"defect": "bpfi", "severity": "high", "modulation": modulation, "text": "x"}
         texts[modulation] = engine.update(capture(defects=defects, findings=[finding])).text
-    assert "without sidebands: the load turns with the inner race" in texts["none"]
-    assert "through the load zone once per turn" in texts["shaft"]
+    assert "no shaft-rate sidebands: the load turns with the inner race" in texts["none"]
+    assert "turns with the shaft through a stationary load zone" in texts["shaft"]
+    # one wording: the alert says what the analysis report says
+    for modulation, text in texts.items():
+        assert modulation_meaning("bpfi", modulation) in text
 
 
 # -------------------------------------------------------------- baseline
