@@ -34,7 +34,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from agent.dsp.fastfft import fft_inplace
+from agent.dsp.fastfft import fft_inplace, rows_to_transform
 
 __all__ = ["band_analytic", "taper_squared", "taper_squared_head", "envelope_power",
            "load_band", "envelope_power_rows", "envelope_amplitude"]
@@ -202,7 +202,8 @@ def envelope_power_rows(z, rows, nb, head, w, tmp, acc):
     z : ndarray, complex64, shape (R, m), C-contiguous
         Rows ``0 .. rows - 1`` hold, in their first ``nb`` entries, one
         segment's band bins loaded by :func:`load_band`; the matrix is used
-        up.
+        up (the other rows too: a partial batch is transformed whole when
+        that is faster, see :func:`agent.dsp.fastfft.rows_to_transform`).
     rows : int
         Segments loaded, ``1 <= rows <= R``.
     nb : int
@@ -242,7 +243,8 @@ def envelope_power_rows(z, rows, nb, head, w, tmp, acc):
         raise ValueError(f"{rows} rows of {nb} bins, scratch {z.shape} and {w.shape}, {k} bins "
                          f"do not fit")
     z[:rows, nb:] = 0.0
-    fft_inplace(z[:rows] if rows > 1 else z[0])
+    whole = rows_to_transform(rows, z.shape[0])  # rows past `rows` are not read
+    fft_inplace(z[:whole] if whole > 1 else z[0])
     t = tmp[:m]
     for r in range(rows):
         part = w[r // 2].imag if r % 2 else w[r // 2].real
