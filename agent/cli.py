@@ -142,6 +142,11 @@ def _cmd_analyze(args):
     from agent.report import analysis_report
     cfg = _load(args)
     analysis, info = analyze_wav(args.recording, cfg, args.point)
+    if info.frames_declared is not None:
+        rate = info.sample_rate_hz
+        print(f"ballpass analyze: note: {args.recording} ends after {info.frames / rate:.1f} s of "
+              f"the {info.frames_declared / rate:.1f} s its header announces (a recording cut "
+              f"short?); what is there was analysed", file=sys.stderr)
     if args.json:
         print(json.dumps(_jsonable(analysis.to_dict()), indent=2))
     else:

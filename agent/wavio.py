@@ -79,6 +79,10 @@ class WavInfo:
     is_float : bool
         True for IEEE float samples (values as stored), False for integer PCM
         (scaled to full scale +-1.0 on reading).
+    frames_declared : int or None
+        Frames the header announces when the file holds fewer (a recording
+        cut short: only ``frames`` are read); None when the file holds them
+        all or the header leaves the size open.
     """
 
     sample_rate_hz: int
@@ -86,6 +90,7 @@ class WavInfo:
     frames: int
     sample_format: str
     is_float: bool
+    frames_declared: int | None = None
 
     @property
     def duration_s(self):
@@ -196,8 +201,12 @@ def _parse_header(fh, path):
     data_offset, data_size = data
     available = max(0, file_size - data_offset)
     frames = min(data_size, available) // block_align
+    declared = None
+    if data_size != _UNSET_DATA_SIZE and data_size // block_align > frames:
+        declared = data_size // block_align
     info = WavInfo(sample_rate_hz=rate, channels=channels, frames=frames,
-                   sample_format=sample_format, is_float=sample_format.startswith("float"))
+                   sample_format=sample_format, is_float=sample_format.startswith("float"),
+                   frames_declared=declared)
     return info, data_offset
 
 

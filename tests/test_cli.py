@@ -47,6 +47,21 @@ def test_analyze_report_is_readable(tmp_path):
     assert "qualified vibration analyst" in r.stdout
 
 
+def test_analyze_says_when_a_recording_was_cut_short(tmp_path):
+    wav = tmp_path / "rec.wav"
+    assert ballpass("simulate", "--out", str(wav), "--fault", "none", "--seconds", "4",
+                    "--sample-rate", "25600", "--seed", "3").returncode == 0
+    cut = tmp_path / "cut.wav"
+    raw = wav.read_bytes()
+    cut.write_bytes(raw[:len(raw) // 2])  # the recorder stopped half way
+    r = ballpass("analyze", str(cut), "--json")
+    assert r.returncode == 0, r.stderr
+    assert "ends after 2.0 s of the 4.0 s its header announces" in r.stderr
+    assert json.loads(r.stdout)["capture_s"] == pytest.approx(2.0, abs=0.01)
+    r = ballpass("analyze", str(wav))
+    assert r.returncode == 0 and r.stderr == ""
+
+
 def test_bearing_command_published_factors():
     r = ballpass("bearing", "--balls", "9", "--ball-diameter-mm", "7.94",
                  "--pitch-diameter-mm", "39.04", "--shaft-hz", "30", "--json")

@@ -265,8 +265,17 @@ def test_truncated_data_is_clamped_to_whole_frames(tmp_path):
     path.write_bytes(raw[:-11])  # recorder stopped mid-frame: 39 bytes short
     info = read_wav_info(path)
     assert info.frames == (100 * 2 - 11) // 4
+    assert info.frames_declared == 50  # what the header announces, for the user's note
     got = read_all(path)
     np.testing.assert_array_equal(got, samples[:info.frames * 2].reshape(-1, 2) / 32768.0)
+
+
+def test_a_complete_file_declares_nothing_missing(tmp_path):
+    path = tmp_path / "whole.wav"
+    samples = np.arange(100, dtype="<i2")
+    path.write_bytes(riff(chunk(b"fmt ", fmt_body(1, 2, 8000, 16)), chunk(b"data", samples.tobytes())))
+    info = read_wav_info(path)
+    assert (info.frames, info.frames_declared) == (50, None)
 
 
 @pytest.mark.parametrize("content,words", [
