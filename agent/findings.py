@@ -10,14 +10,23 @@ Rules (all thresholds are module constants, documented here):
 
 - a harmonic *stands out* when it is at least ``HARMONIC_SNR_DB`` above the
   median of its neighbourhood;
-- a harmonic whose search window also holds a shaft harmonic or another
-  defect's harmonic is *ambiguous* and never counted as evidence;
+- a harmonic whose search window also holds another defect's harmonic or
+  sideband is *ambiguous* and never counted as evidence; so is one within two
+  bins of a low shaft harmonic (orders up to 10) when the envelope spectrum
+  shows a comb of shaft harmonics of its own (looseness, rubs: at least
+  ``SHAFT_COMB_MIN_LINES`` standing lines at orders 3-10 that are not the
+  defect's harmonics), and, without such a comb, one within
+  ``SHAFT_LINE_BINS`` of a shaft harmonic (too close to tell apart);
 - a defect signature is present when its fundamental stands out by at least
   ``FUNDAMENTAL_SNR_DB`` and at least ``MIN_HARMONICS`` unambiguous harmonics
   (the fundamental included) stand out;
 - the sideband ratio is measured only around a fundamental that stands out
   (``HARMONIC_SNR_DB``): beside a line lost in the floor it would be a ratio
   of noise to noise, often well above 1, and is reported as ``None``;
+- a sideband that falls on a standing line of another defect found present,
+  and nearer to it than that defect's own harmonic is, belongs to that defect:
+  the ratio is then twice the other sideband over the line (the two are equal
+  for pure amplitude modulation), or ``None`` when both are taken;
 - the signature is *modulated* when the sideband ratio at the fundamental is
   at least ``SIDEBAND_RATIO_MIN`` and one sideband stands out;
 - severity: ``high`` from ``HIGH_SNR_DB`` or ``HIGH_HARMONICS`` harmonics,
@@ -32,8 +41,8 @@ import math
 
 from agent.dsp.peaks import find_peak, noise_floor, sideband_ratio, snr_db
 
-__all__ = ["DEFECTS", "search_defect", "count_harmonics", "judge", "summary_sentence",
-           "modulation_meaning"]
+__all__ = ["DEFECTS", "search_defect", "shaft_lines", "count_harmonics", "judge",
+           "summary_sentence", "modulation_meaning"]
 
 HARMONIC_SNR_DB = 6.0
 FUNDAMENTAL_SNR_DB = 10.0
@@ -43,6 +52,12 @@ MEDIUM_SNR_DB = 16.0
 HIGH_SNR_DB = 25.0
 MEDIUM_HARMONICS = 4
 HIGH_HARMONICS = 6
+#: Standing shaft harmonics of orders 3-10, not the defect's own lines, that
+#: show a comb of shaft harmonics (1x and 2x also come from load modulation).
+SHAFT_COMB_MIN_LINES = 2
+#: Without such a comb, a line this close to a shaft harmonic (in bins) still
+#: cannot be told from it.
+SHAFT_LINE_BINS = 0.5
 
 #: key -> (label, what it is, modulating frequency: "shaft" | "cage" | None)
 DEFECTS = {
@@ -94,7 +109,8 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
     floor_hw = max(0.25 * expected_hz, 8 * df_hz)
     out = {"expected_hz": expected_hz, "found_hz": None, "amplitude": 0.0, "snr_db": 0.0,
            "lines": [], "searched": 0, "sideband_ratio": None, "sideband_snr_db": None,
-           "modulation_hz": modulation_hz, "harmonics": 0, "peak_snr_db": 0.0}
+           "modulation_hz": modulation_hz, "harmonics": 0, "peak_snr_db": 0.0,
+           "base_hz": expected_hz, "sidebands": None}
     base = expected_hz
     for h in range(1, harmonics + 1):
         target = h * base
@@ -110,14 +126,55 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
             out.update(found_hz=pk.freq_hz, amplitude=pk.amplitude, snr_db=s)
             if s >= HARMONIC_SNR_DB:
                 base = pk.freq_hz
+                out["base_hz"] = base
         out["lines"].append((h, pk.freq_hz, pk.amplitude, s))
     if out["found_hz"] is not None and modulation_hz and out["snr_db"] >= HARMONIC_SNR_DB:
         fc = out["found_hz"]
         ratio, lower, upper = sideband_ratio(amp, df_hz, fc, modulation_hz,
                                              0.25 * tolerance * fc + 1.5 * df_hz)
         if math.isfinite(ratio):
+            floor = noise_floor(amp, df_hz, fc, floor_hw)
             out["sideband_ratio"] = ratio
-            out["sideband_snr_db"] = snr_db(max(lower, upper), noise_floor(amp, df_hz, fc, floor_hw))
+            out["sideband_snr_db"] = snr_db(max(lower, upper), floor)
+            carrier = (lower + upper) / ratio if ratio > 0 else out["amplitude"]
+            out["sidebands"] = (lower, upper, carrier, floor)
+    return out
+
+
+def shaft_lines(amp, df_hz, shaft_hz, max_order=10):
+    """Shaft harmonics that stand out in an envelope amplitude spectrum.
+
+    Looseness and rubs fill the envelope with a comb of shaft harmonics; a
+    bearing defect line that falls on one of them cannot be told from it
+    (see :func:`count_harmonics`).
+
+    Parameters
+    ----------
+    amp : ndarray or list of float
+        Envelope amplitude spectrum on bins ``k * df_hz``.
+    df_hz, shaft_hz : float
+        Bin spacing and shaft speed in Hz.
+    max_order : int, default 10
+
+    Returns
+    -------
+    list of (int, float)
+        ``(order, freq_hz)`` of each order whose peak, within 1.5 bins of
+        ``order * shaft_hz``, is a local maximum ``HARMONIC_SNR_DB`` over the
+        local floor.
+    """
+    out = []
+    n_hz = len(amp) * df_hz
+    for k in range(1, max_order + 1):
+        f = k * shaft_hz
+        if f + 8 * df_hz >= n_hz:
+            break
+        pk = find_peak(amp, df_hz, f, 0.0)
+        if pk is None or not _is_local_max(amp, pk.bin):
+            continue
+        if snr_db(pk.amplitude, noise_floor(amp, df_hz, pk.freq_hz, max(0.25 * f, 8 * df_hz))) \
+                >= HARMONIC_SNR_DB:
+            out.append((k, pk.freq_hz))
     return out
 
 
@@ -126,8 +183,8 @@ def _explaining_lines(evidence, shaft_hz, skip):
 
     Each is ``(freq_hz, expected_hz or None)``: the defect's own standing
     harmonics (with where that defect expects them), and the sidebands its
-    modulation puts beside them (±1x and ±2x for the races, ±FTF for the
-    rolling element), which belong to nobody else.
+    modulation puts beside them (±1x and ±2x for the races, ±FTF and ±2 FTF
+    for the rolling element), which belong to nobody else.
     """
     ftf_hz = evidence["ftf"]["expected_hz"] if "ftf" in evidence else None
     out = []
@@ -135,7 +192,7 @@ def _explaining_lines(evidence, shaft_hz, skip):
         if k == skip or ev["snr_db"] < FUNDAMENTAL_SNR_DB:
             continue
         mods = {"bpfo": (shaft_hz, 2 * shaft_hz), "bpfi": (shaft_hz, 2 * shaft_hz),
-                "bsf": (ftf_hz,) if ftf_hz else ()}.get(k, ())
+                "bsf": (ftf_hz, 2 * ftf_hz) if ftf_hz else ()}.get(k, ())
         for h, f, _, s in ev["lines"]:
             if s < HARMONIC_SNR_DB:
                 continue
@@ -161,19 +218,32 @@ def _cage_comb_hz(evidence):
     return bsf["found_hz"] * ftf["expected_hz"] / bsf["expected_hz"]
 
 
-def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10):
+def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, shaft_lines=None):
     """Count the harmonics that stand out and are not explained by something else.
 
-    A line is *ambiguous* when it lies within two bins of a low shaft
-    harmonic (looseness and rubs put those in the envelope), on the cage-rate
-    comb of a rolling-element signature (races only), of a sideband
-    of another defect, or of a standing line of another defect whose
-    fundamental stands out -- unless this defect expects that line nearer
-    than the other one does (two defect rates a percent or two apart share
-    their lines; the line goes to the nearer one, not to neither).  Then a
-    sideband ratio is dropped when one of its sidebands is a line of another
-    defect that qualifies as present: it measures that defect, not a
-    modulation.
+    A line is *ambiguous* when it lies near a low shaft harmonic (see
+    below), on the cage-rate comb of a rolling-element signature (races
+    only), within two bins of a sideband of another defect, or of a
+    standing line of another defect whose fundamental stands out -- unless
+    this defect expects that line nearer than the other one does (two defect
+    rates a percent or two apart share their lines; the line goes to the
+    nearer one, not to neither).
+
+    Near a shaft harmonic means within two bins of it when the envelope
+    spectrum shows a comb of shaft harmonics that this defect does not
+    explain (``shaft_lines``: at least ``SHAFT_COMB_MIN_LINES`` of orders
+    3-10 away from the defect's own harmonics), as looseness and rubs put
+    there; without such a comb only within ``SHAFT_LINE_BINS``, where the
+    two cannot be told apart.  A defect whose rate is close to a whole
+    multiple of the shaft speed is thus judged on its own lines, not
+    silenced by shaft harmonics the spectrum does not show.
+
+    Then, for each defect present, a sideband that falls within two bins of
+    a standing line of another present defect, and nearer to it than that
+    defect's own harmonic (``h`` times its found rate) is, belongs to the
+    other defect: the sideband ratio is then measured on the remaining
+    sideband alone (twice it over the line; the two sidebands are equal for
+    pure amplitude modulation), or dropped when both are taken.
 
     Parameters
     ----------
@@ -184,15 +254,19 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10):
         ``fundamental_ambiguous``.
     shaft_hz, df_hz : float
     max_shaft_order : int, default 10
+    shaft_lines : list of (int, float), optional
+        :func:`shaft_lines` of the same spectrum.  Without it every low
+        shaft harmonic is assumed present (the cautious reading).
     """
     guard = 2.0 * df_hz
     cage_hz = _cage_comb_hz(evidence)
     for key, ev in evidence.items():
         others = _explaining_lines(evidence, shaft_hz, key)
+        shaft_guard = guard if _shaft_comb(ev, shaft_lines, guard) else SHAFT_LINE_BINS * df_hz
         count, best, fund_amb = 0, 0.0, ev["found_hz"] is None
         for h, f, _, s in ev["lines"]:
             k = round(f / shaft_hz)
-            amb = 1 <= k <= max_shaft_order and abs(f - k * shaft_hz) <= guard
+            amb = 1 <= k <= max_shaft_order and abs(f - k * shaft_hz) <= shaft_guard
             if cage_hz and key in ("bpfo", "bpfi"):
                 j = round(f / cage_hz)
                 amb = amb or (j >= 1 and abs(f - j * cage_hz) <= guard)
@@ -213,15 +287,36 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10):
     present = [k for k, ev in evidence.items() if _present(ev)]
     for key in present:
         ev = evidence[key]
-        if ev["sideband_ratio"] is None or not ev["modulation_hz"]:
+        if ev["sideband_ratio"] is None or not ev["modulation_hz"] or ev["sidebands"] is None:
             continue
-        lines = [f for k in present if k != key for _, f, _, s in evidence[k]["lines"]
-                 if s >= HARMONIC_SNR_DB]
+        claims = [(f, h * evidence[k]["base_hz"]) for k in present if k != key
+                  for h, f, _, s in evidence[k]["lines"] if s >= HARMONIC_SNR_DB]
         fc, fm = ev["found_hz"], ev["modulation_hz"]
-        if any(abs(f - (fc - fm)) <= guard or abs(f - (fc + fm)) <= guard for f in lines):
+        lower, upper, carrier, floor = ev["sidebands"]
+
+        def taken(pos):
+            return any(abs(f - pos) <= guard and abs(f - own) <= abs(f - pos) for f, own in claims)
+
+        kept = [a for a, pos in ((lower, fc - fm), (upper, fc + fm)) if not taken(pos)]
+        if len(kept) == 2:
+            continue
+        if kept and carrier > 0:
+            ev["sideband_ratio"] = 2.0 * kept[0] / carrier
+            ev["sideband_snr_db"] = snr_db(kept[0], floor)
+        else:
             ev["sideband_ratio"] = None
             ev["sideband_snr_db"] = None
     return evidence
+
+
+def _shaft_comb(ev, lines, guard):
+    """True when ``lines`` (standing shaft harmonics; None: unknown) show a
+    comb that the defect's own harmonics do not explain."""
+    if lines is None:
+        return True
+    own = [h * ev["base_hz"] for h in range(1, ev["searched"] + 1)]
+    apart = [f for k, f in lines if k >= 3 and all(abs(f - p) > guard for p in own)]
+    return len(apart) >= SHAFT_COMB_MIN_LINES
 
 
 def _severity(ev):

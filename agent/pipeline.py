@@ -49,7 +49,7 @@ from agent.dsp.levels import Moments
 from agent.dsp.quality import QualityGate
 from agent.dsp.spectrum import hann, psd_scale, velocity_rms_mm_s
 from agent.dsp.speed import refine_shaft_hz
-from agent.findings import count_harmonics, judge, search_defect, summary_sentence
+from agent.findings import count_harmonics, judge, search_defect, shaft_lines, summary_sentence
 
 __all__ = ["Pipeline", "Analysis", "plan_segment"]
 
@@ -530,7 +530,8 @@ class Pipeline:
             out[key] = search_defect(amp, self.df_hz, f0, p.envelope.harmonics,
                                      p.envelope.tolerance, modulation_hz=fm)
         out["bsf"]["spin_hz"] = freqs["bsf"]
-        return count_harmonics(out, shaft_hz, self.df_hz)
+        return count_harmonics(out, shaft_hz, self.df_hz,
+                               shaft_lines=shaft_lines(amp, self.df_hz, shaft_hz))
 
     def analyze(self, x, extra_flags=()):
         """Analyse a whole array (m/s²) as one capture."""

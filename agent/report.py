@@ -103,6 +103,7 @@ def analysis_report(d, source=""):
             rows).splitlines()]
         out.append(f"  sideband ratio = (lower + upper sideband) / line, shown where the line stands "
                    f"{HARMONIC_SNR_DB:g} dB above the floor")
+        out.append("  (2 x the other sideband / line where one sideband is another defect's line)")
         out.append("")
 
     out.append("Findings")

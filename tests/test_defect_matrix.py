@@ -181,6 +181,71 @@ def test_strong_outer_fault_is_reported_when_bpfo_and_two_bsf_coincide():
     assert findings(a) == {("bpfo", "none")}
 
 
+def run_bearing(geometry, shaft_hz, fs, faults, modulation, band_hz=None, seed=1,
+                resonance_hz=3000.0, impact_m_s2=3.0, capture_s=10.0):
+    """One 10 s capture (the default capture length) of a given bearing."""
+    envelope = {"band_hz": list(band_hz)} if band_hz else {}
+    pl = Pipeline(make_point(geometry, shaft_hz, **envelope), fs, capture_s)
+    m = MachineModel(shaft_hz=shaft_hz, orders=pl.point.bearing.orders, faults=frozenset(faults),
+                     modulation=modulation, resonance_hz=resonance_hz, impact_m_s2=impact_m_s2)
+    return pl.analyze(simulate(m, fs, capture_s, seed=seed))
+
+
+def test_defect_rate_near_a_whole_shaft_order_is_judged_on_its_own_lines():
+    # Regression: 8 balls, d/D = 0.263, 15 deg: BPFO = 2.983 x shaft, its first
+    # three harmonics within a bin of 3x, 6x and 9x.  The simulated machine has no
+    # shaft-harmonic comb in its envelope (no looseness), so the even outer-race
+    # impacts (Randall & Antoni 2011, sec. 2.2) must be reported, not silenced
+    geometry = {"balls": 8, "ball_diameter_mm": 20.23, "pitch_diameter_mm": 76.86,
+                "contact_angle_deg": 15.0}
+    a = run_bearing(geometry, 10.13, 48000, {"outer"}, "none", band_hz=(2400, 5600),
+                    seed=64246, resonance_hz=4000.0, impact_m_s2=4.1)
+    assert findings(a) == {("bpfo", "none")}
+
+
+def test_inner_race_rate_near_ten_times_shaft_speed_is_reported():
+    # Regression: 16 balls, d/D = 0.248: BPFI = 9.98 x shaft, 1.2 Hz from 10x
+    # (Randall & Antoni 2011: an inner-race defect, even impacts without a load zone)
+    geometry = {"balls": 16, "ball_diameter_mm": 13.2183, "pitch_diameter_mm": 53.3678}
+    a = run_bearing(geometry, 50.9037, 51200, {"inner"}, "none", seed=668788,
+                    resonance_hz=4000.0, impact_m_s2=3.1386)
+    assert findings(a) == {("bpfi", "none")}
+
+
+def test_rolling_element_sideband_is_not_taken_by_a_cage_harmonic():
+    # Regression: 7 balls, 2xBSF = 45.8 Hz, FTF = 5.04 Hz; the 8th FTF harmonic's
+    # window (40.3 Hz) holds the lower FTF sideband of 2xBSF (40.75 Hz).  The line
+    # is the sideband's, and the rolling-element signature keeps its cage-rate
+    # modulation (Randall & Antoni 2011, sec. 2.2: FTF sidebands around 2xBSF)
+    geometry = {"balls": 7, "ball_diameter_mm": 15.9852, "pitch_diameter_mm": 56.4995}
+    a = run_bearing(geometry, 14.0701, 44100, {"rolling"}, "gravity", band_hz=(2400, 5600),
+                    seed=168991, resonance_hz=4000.0, impact_m_s2=4.4151)
+    assert findings(a) == {("bsf", "cage")}
+
+
+def test_second_cage_sideband_of_a_rolling_element_is_not_an_inner_race_finding():
+    # Regression: 9 balls, 25 deg, shaft 55 Hz: 2xBSF + 2 FTF = 296.1 Hz lies 0.4 %
+    # from BPFI (294.9 Hz).  A rolling element carried through the load zone puts
+    # sidebands at +-FTF and +-2 FTF (Randall & Antoni 2011, sec. 2.2): the line
+    # belongs to it, and no inner-race finding may come of it
+    geometry = {"balls": 9, "ball_diameter_mm": 13.84, "pitch_diameter_mm": 65.71,
+                "contact_angle_deg": 25.0}
+    a = run_bearing(geometry, 55.02, 51200, {"rolling"}, "gravity", band_hz=(2400, 5600),
+                    seed=170914, resonance_hz=4000.0, impact_m_s2=5.7)
+    assert findings(a) == {("bsf", "cage")}
+
+
+def test_both_races_modulated_when_one_sideband_falls_on_the_other_race():
+    # Regression: 6 balls, BPFO + BPFI = 6 x shaft: BPFI + 1x (4.68 x) lies 0.9 Hz
+    # from 2 x BPFO (4.63 x).  The upper sideband belongs to BPFO; the lower one
+    # still shows the stationary load zone's 1x modulation of the inner race
+    # (Randall & Antoni 2011, sec. 2.2)
+    geometry = {"balls": 6, "ball_diameter_mm": 6.157, "pitch_diameter_mm": 27.05}
+    a = run_bearing(geometry, 18.99, 25600, {"outer", "inner"}, "both", band_hz=(1800, 4200),
+                    seed=889014, resonance_hz=3000.0, impact_m_s2=5.8)
+    assert findings(a) == {("bpfo", "shaft"), ("bpfi", "shaft")}
+
+
 # --------------------------------------------------------------------------- signal quality
 
 FS_Q = 25600

@@ -469,6 +469,50 @@ def test_no_sideband_ratio_around_a_fundamental_lost_in_the_floor():
     assert only_floor["sideband_ratio"] is None and only_floor["sideband_snr_db"] is None
 
 
+def _comb_spectrum(df, lines, n=4000, seed=9):
+    """An envelope amplitude spectrum: a rough floor near 1e-3 and lines (f, a)."""
+    rng = np.random.default_rng(seed)
+    amp = 1e-3 * (1.0 + 0.2 * rng.random(n))
+    for f, a in lines:
+        amp[int(round(f / df))] = a
+    return amp
+
+
+def _judged(amp, df, shaft_hz, key_hz):
+    from agent.findings import count_harmonics, judge, search_defect, shaft_lines
+    ev = {"bpfo": search_defect(amp, df, key_hz, 8, 0.02, modulation_hz=shaft_hz)}
+    count_harmonics(ev, shaft_hz, df, shaft_lines=shaft_lines(amp, df, shaft_hz))
+    return {f["defect"] for f in judge(ev, flagged=False)}
+
+
+def test_a_shaft_harmonic_comb_silences_a_defect_rate_on_it():
+    # common practice: looseness and rubs fill the envelope spectrum with a comb of
+    # shaft harmonics; a defect rate that lies on that comb cannot be claimed from
+    # the lines it shares with it.  BPFO = 2.99 x shaft, lines 1 bin from 3x, 6x, 9x.
+    df, shaft, bpfo = 0.25, 10.0, 29.9
+    defect = [(h * bpfo, 0.1 / h) for h in range(1, 9)]
+    comb = [(k * shaft, 0.05) for k in range(1, 31)]
+    assert _judged(_comb_spectrum(df, defect), df, shaft, bpfo) == {"bpfo"}
+    assert _judged(_comb_spectrum(df, comb), df, shaft, bpfo) == set()
+    # the comb alone, whatever the defect lines would add, is no outer-race finding
+    # from lines that sit on it: with both, the fundamental stays ambiguous
+    from agent.findings import count_harmonics, search_defect, shaft_lines
+    amp = _comb_spectrum(df, comb + defect)
+    ev = {"bpfo": search_defect(amp, df, bpfo, 8, 0.02, modulation_hz=shaft)}
+    count_harmonics(ev, shaft, df, shaft_lines=shaft_lines(amp, df, shaft))
+    assert ev["bpfo"]["fundamental_ambiguous"]
+
+
+def test_a_defect_line_on_a_shaft_harmonic_cannot_be_told_from_it():
+    # from memory: lines closer than about half a bin cannot be separated in a
+    # Hann-windowed spectrum.  BPFO = 3.001 x shaft sits on 3x: without other
+    # evidence beyond the shaft orders up to 10, no finding
+    df, shaft = 0.25, 10.0
+    bpfo = 30.01
+    amp = _comb_spectrum(df, [(h * bpfo, 0.1 / h) for h in range(1, 4)])
+    assert _judged(amp, df, shaft, bpfo) == set()
+
+
 def test_sideband_ratio_bad_input():
     amp = np.ones(1000)
     with pytest.raises(ValueError):
