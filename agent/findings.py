@@ -184,9 +184,14 @@ def _explaining_lines(evidence, shaft_hz, skip):
     Each is ``(freq_hz, expected_hz or None)``: the defect's own standing
     harmonics (with where that defect expects them), and the sidebands its
     modulation puts beside them (±1x and ±2x for the races, ±FTF and ±2 FTF
-    for the rolling element), which belong to nobody else.
+    for the rolling element), which belong to nobody else.  A race or
+    rolling-element defect's harmonics beyond those it searched (a point may
+    search fewer than the spectrum holds) are included where it would put
+    them, as whole multiples of its found rate, up to the highest line of
+    ``skip``: a line there is no evidence for ``skip``.
     """
     ftf_hz = evidence["ftf"]["expected_hz"] if "ftf" in evidence else None
+    top_hz = max((f for _, f, _, _ in evidence[skip]["lines"]), default=0.0)
     out = []
     for k, ev in evidence.items():
         if k == skip or ev["snr_db"] < FUNDAMENTAL_SNR_DB:
@@ -199,6 +204,11 @@ def _explaining_lines(evidence, shaft_hz, skip):
             out.append((f, h * ev["expected_hz"]))
             for m in mods:
                 out += [(f - m, None), (f + m, None)]
+        if k != "ftf" and ev["snr_db"] >= HARMONIC_SNR_DB:
+            h = ev["searched"] + 1
+            while h * ev["base_hz"] <= top_hz:
+                out.append((h * ev["base_hz"], h * ev["expected_hz"]))
+                h += 1
     return out
 
 

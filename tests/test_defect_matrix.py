@@ -182,10 +182,10 @@ def test_strong_outer_fault_is_reported_when_bpfo_and_two_bsf_coincide():
 
 
 def run_bearing(geometry, shaft_hz, fs, faults, modulation, band_hz=None, seed=1,
-                resonance_hz=3000.0, impact_m_s2=3.0, capture_s=10.0):
+                resonance_hz=3000.0, impact_m_s2=3.0, capture_s=10.0, harmonics=8):
     """One 10 s capture (the default capture length) of a given bearing."""
     envelope = {"band_hz": list(band_hz)} if band_hz else {}
-    pl = Pipeline(make_point(geometry, shaft_hz, **envelope), fs, capture_s)
+    pl = Pipeline(make_point(geometry, shaft_hz, harmonics, **envelope), fs, capture_s)
     m = MachineModel(shaft_hz=shaft_hz, orders=pl.point.bearing.orders, faults=frozenset(faults),
                      modulation=modulation, resonance_hz=resonance_hz, impact_m_s2=impact_m_s2)
     return pl.analyze(simulate(m, fs, capture_s, seed=seed))
@@ -212,6 +212,19 @@ def test_inner_race_rate_near_ten_times_shaft_speed_is_reported():
     assert findings(a) == {("bpfi", "none")}
 
 
+def test_automatic_band_reaches_a_low_resonance_on_a_fast_shaft():
+    # Regression: 13 balls, shaft 57 Hz: the envelope must reach 3.8 kHz, so only
+    # wide bands qualify, and none of the tree's wide bands above 500 Hz held the
+    # 3 kHz resonance.  Spectral kurtosis must find the ringing band (Antoni 2007)
+    # and the rolling element its cage-rate modulation (Randall & Antoni 2011)
+    geometry = {"balls": 13, "ball_diameter_mm": 20.5997, "pitch_diameter_mm": 81.5507}
+    a = run_bearing(geometry, 56.9327, 48000, {"rolling"}, "gravity", seed=362889,
+                    resonance_hz=3000.0, impact_m_s2=3.4272)
+    lo, hi = a.envelope["band_hz"]
+    assert lo < 3000.0 < hi
+    assert findings(a) == {("bsf", "cage")}
+
+
 def test_rolling_element_sideband_is_not_taken_by_a_cage_harmonic():
     # Regression: 7 balls, 2xBSF = 45.8 Hz, FTF = 5.04 Hz; the 8th FTF harmonic's
     # window (40.3 Hz) holds the lower FTF sideband of 2xBSF (40.75 Hz).  The line
@@ -232,6 +245,18 @@ def test_second_cage_sideband_of_a_rolling_element_is_not_an_inner_race_finding(
                 "contact_angle_deg": 25.0}
     a = run_bearing(geometry, 55.02, 51200, {"rolling"}, "gravity", band_hz=(2400, 5600),
                     seed=170914, resonance_hz=4000.0, impact_m_s2=5.7)
+    assert findings(a) == {("bsf", "cage")}
+
+
+def test_rolling_element_harmonics_beyond_those_searched_are_not_inner_race_evidence():
+    # Regression: 16 balls, 40 deg, shaft 42.4 Hz, 12 kHz, 5 harmonics searched:
+    # BPFI (9.30 x) lies 1.4 % from 2 x 2xBSF (9.17 x), and BPFI's 3rd and 4th
+    # harmonics on 2xBSF's 6th and 8th, which 2xBSF did not search.  They are
+    # the rolling element's (whole multiples of its found rate), not an inner race's
+    geometry = {"balls": 16, "ball_diameter_mm": 17.3356, "pitch_diameter_mm": 81.6605,
+                "contact_angle_deg": 40.0}
+    a = run_bearing(geometry, 42.3759, 12000, {"rolling"}, "gravity", seed=465257,
+                    resonance_hz=2500.0, impact_m_s2=5.7803, harmonics=5)
     assert findings(a) == {("bsf", "cage")}
 
 

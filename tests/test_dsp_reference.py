@@ -577,6 +577,18 @@ def test_spectral_kurtosis_of_gaussian_noise_is_zero(seed):
     assert abs(float(np.mean(k))) < 0.02
 
 
+def test_candidate_bands_cut_at_the_limits_keep_a_low_resonance_inside():
+    # Antoni 2007: the 1/3-binary tree of the fast kurtogram; its first band of
+    # each level starts at 0 Hz.  A fast shaft needs wide bands (here 3.8 kHz for
+    # the envelope to hold 8 harmonics); cut back to the 500 Hz limit instead of
+    # dropped, they keep a 3 kHz resonance well inside a candidate.
+    fs, min_width = 48000.0, 3800.0
+    bands = candidate_bands(fs, min_width, 500.0, 0.45 * fs)
+    assert all(500.0 <= lo < hi <= 0.45 * fs and hi - lo >= min_width for lo, hi in bands)
+    assert any(lo + 0.2 * (hi - lo) <= 3000.0 <= hi - 0.2 * (hi - lo) for lo, hi in bands)
+    assert (500.0, 6000.0) in bands and (0.0, 6000.0) not in bands
+
+
 def test_spectral_kurtosis_of_a_tone_is_minus_one():
     # Antoni 2006: SK of a pure sinusoid is -1
     x = tone(5010.3, 1.0, 10.0)

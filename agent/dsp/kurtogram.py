@@ -58,7 +58,11 @@ def candidate_bands(fs, min_width_hz, lo_limit_hz, hi_limit_hz, levels=8):
         the band is wide, so it must hold the highest defect harmonic sought.
     lo_limit_hz, hi_limit_hz : float
         Edges a band may not cross (keep clear of shaft harmonics at the low
-        end and of the converter's anti-alias filter at the top).
+        end and of the converter's anti-alias filter at the top).  A band of
+        the tree that crosses one is cut back to it, and kept while it is
+        still wide enough: a resonance low in the spectrum (the tree's first
+        band of each level starts at 0 Hz) is then still inside a candidate
+        rather than on the edge of all of them.
     levels : int, default 8
         Depth of the tree.
 
@@ -77,8 +81,8 @@ def candidate_bands(fs, min_width_hz, lo_limit_hz, hi_limit_hz, levels=8):
             if width < min_width_hz:
                 continue
             for i in range(parts):
-                lo, hi = i * width, (i + 1) * width
-                if lo >= lo_limit_hz and hi <= hi_limit_hz:
+                lo, hi = max(i * width, lo_limit_hz), min((i + 1) * width, hi_limit_hz)
+                if hi - lo >= min_width_hz:
                     out.append((lo, hi))
     out = sorted(set(out), key=lambda b: (-(b[1] - b[0]), b[0]))
     return out
