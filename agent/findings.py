@@ -23,6 +23,10 @@ Rules (all thresholds are module constants, documented here):
 - the sideband ratio is measured only around a fundamental that stands out
   (``HARMONIC_SNR_DB``): beside a line lost in the floor it would be a ratio
   of noise to noise, often well above 1, and is reported as ``None``;
+- two defects whose standing fundamentals are one line are not both judged:
+  the one whose expected rate is nearer to the line is (on a tie within
+  ``TIE_BINS``, the one whose own modulation shows in the sidebands), and its
+  finding's text says that the other rate falls on the same line;
 - a sideband that falls on a standing line of another defect found present,
   and nearer to it than that defect's own harmonic is, belongs to that defect:
   the ratio is then twice the other sideband over the line (the two are equal
@@ -58,6 +62,9 @@ SHAFT_COMB_MIN_LINES = 2
 #: Without such a comb, a line this close to a shaft harmonic (in bins) still
 #: cannot be told from it.
 SHAFT_LINE_BINS = 0.5
+#: Two defects' expected positions of a line closer than this (in bins) are a
+#: tie: the line is evidence for neither.
+TIE_BINS = 0.25
 
 #: key -> (label, what it is, modulating frequency: "shaft" | "cage" | None)
 DEFECTS = {
@@ -194,7 +201,7 @@ def _explaining_lines(evidence, shaft_hz, skip):
     top_hz = max((f for _, f, _, _ in evidence[skip]["lines"]), default=0.0)
     out = []
     for k, ev in evidence.items():
-        if k == skip or ev["snr_db"] < FUNDAMENTAL_SNR_DB:
+        if k == skip or ev["snr_db"] < FUNDAMENTAL_SNR_DB or ev.get("same_line_as"):
             continue
         mods = {"bpfo": (shaft_hz, 2 * shaft_hz), "bpfi": (shaft_hz, 2 * shaft_hz),
                 "bsf": (ftf_hz, 2 * ftf_hz) if ftf_hz else ()}.get(k, ())
@@ -221,7 +228,7 @@ def _cage_comb_hz(evidence):
     2xBSF line (more precise than the low FTF line itself).
     """
     bsf, ftf = evidence.get("bsf"), evidence.get("ftf")
-    if not bsf or not ftf or bsf["found_hz"] is None:
+    if not bsf or not ftf or bsf["found_hz"] is None or bsf.get("same_line_as"):
         return None
     if min(bsf["snr_db"], ftf["snr_db"]) < FUNDAMENTAL_SNR_DB:
         return None
@@ -260,8 +267,9 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, shaft_lines=N
     evidence : dict
         ``{key: search_defect(...)}``; updated in place with ``harmonics``
         (unambiguous harmonics that stand out), ``peak_snr_db`` (best
-        unambiguous SNR of the first three harmonics) and
-        ``fundamental_ambiguous``.
+        unambiguous SNR of the first three harmonics; of the first three
+        unambiguous lines when the fundamental is ambiguous only for lying on
+        a shaft harmonic without a comb) and ``fundamental_ambiguous``.
     shaft_hz, df_hz : float
     max_shaft_order : int, default 10
     shaft_lines : list of (int, float), optional
@@ -269,30 +277,43 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, shaft_lines=N
         shaft harmonic is assumed present (the cautious reading).
     """
     guard = 2.0 * df_hz
+    tie_hz = TIE_BINS * df_hz
+    _mark_same_line(evidence, guard, tie_hz)
     cage_hz = _cage_comb_hz(evidence)
     for key, ev in evidence.items():
         others = _explaining_lines(evidence, shaft_hz, key)
-        shaft_guard = guard if _shaft_comb(ev, shaft_lines, guard) else SHAFT_LINE_BINS * df_hz
+        comb = _shaft_comb(ev, shaft_lines, guard)
+        shaft_guard = guard if comb else SHAFT_LINE_BINS * df_hz
         count, best, fund_amb = 0, 0.0, ev["found_hz"] is None
+        on_shaft_only = False  # the fundamental is ambiguous for a shaft harmonic alone
+        first_three = []  # SNRs of the first three unambiguous lines, whatever their order
         for h, f, _, s in ev["lines"]:
             k = round(f / shaft_hz)
-            amb = 1 <= k <= max_shaft_order and abs(f - k * shaft_hz) <= shaft_guard
+            amb_shaft = 1 <= k <= max_shaft_order and abs(f - k * shaft_hz) <= shaft_guard
+            amb_other = False
             if cage_hz and key in ("bpfo", "bpfi"):
                 j = round(f / cage_hz)
-                amb = amb or (j >= 1 and abs(f - j * cage_hz) <= guard)
+                amb_other = j >= 1 and abs(f - j * cage_hz) <= guard
             mine = abs(f - h * ev["expected_hz"])
-            for fo, expected in others:
-                if abs(f - fo) <= guard and (expected is None or abs(f - expected) <= mine):
-                    amb = True
-                    break
+            amb_other = amb_other or any(
+                abs(f - fo) <= guard and (expected is None or abs(f - expected) <= mine + tie_hz)
+                for fo, expected in others)
+            amb = amb_shaft or amb_other
             if h == 1:
                 fund_amb = amb
+                on_shaft_only = amb_shaft and not amb_other
             if amb:
                 continue
             if s >= HARMONIC_SNR_DB:
                 count += 1
             if h <= 3:
                 best = max(best, s)
+            if len(first_three) < 3:
+                first_three.append(s)
+        if on_shaft_only and not comb and first_three:
+            # the low lines sit on shaft harmonics that show no comb of their own:
+            # the next lines of the defect carry the evidence
+            best = max(first_three)
         ev.update(harmonics=count, peak_snr_db=best, fundamental_ambiguous=fund_amb)
     present = [k for k, ev in evidence.items() if _present(ev)]
     for key in present:
@@ -319,6 +340,30 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, shaft_lines=N
     return evidence
 
 
+def _mark_same_line(evidence, guard, tie_hz):
+    """Two defects whose standing fundamentals are one line cannot be told apart
+    by their lines: one of them gets ``same_line_as`` (the other's key) and is
+    neither judged nor used to explain lines.  It is the one whose expected
+    rate lies farther from the line; when both lie equally near (within
+    ``tie_hz``), the one whose own modulation does not show in the sidebands
+    (a race's at 1x, a rolling element's at FTF)."""
+    standing = [k for k, ev in evidence.items()
+                if ev["found_hz"] is not None and ev["snr_db"] >= FUNDAMENTAL_SNR_DB]
+    for a in standing:
+        ea = evidence[a]
+        for b in standing:
+            eb = evidence[b]
+            if a == b or abs(ea["found_hz"] - eb["found_hz"]) > guard:
+                continue
+            da = abs(ea["found_hz"] - ea["expected_hz"])
+            db = abs(eb["found_hz"] - eb["expected_hz"])
+            if abs(da - db) <= tie_hz and _modulated(ea) != _modulated(eb):
+                if _modulated(eb):
+                    ea["same_line_as"] = b
+            elif da > db:
+                ea["same_line_as"] = b
+
+
 def _shaft_comb(ev, lines, guard):
     """True when ``lines`` (standing shaft harmonics; None: unknown) show a
     comb that the defect's own harmonics do not explain."""
@@ -338,6 +383,8 @@ def _severity(ev):
 
 
 def _present(ev):
+    if ev.get("same_line_as"):
+        return False
     if ev["found_hz"] is None or ev["fundamental_ambiguous"]:
         return ev["harmonics"] >= MIN_HARMONICS + 1 and ev["peak_snr_db"] >= FUNDAMENTAL_SNR_DB
     return ev["snr_db"] >= FUNDAMENTAL_SNR_DB and ev["harmonics"] >= MIN_HARMONICS
@@ -421,8 +468,14 @@ def judge(evidence, flagged):
         mod_kind = DEFECTS[key][2]
         modulation = mod_kind if (mod_kind and _modulated(ev)) else "none"
         severity = _severity(ev)
+        text = _text(key, ev, modulation, severity)
+        for other, oev in evidence.items():
+            if oev.get("same_line_as") == key:
+                label, what, _ = DEFECTS[other]
+                text += (f" This bearing's {label} ({what.lower()} defect rate) falls on the "
+                         f"same line: the envelope cannot tell the two apart.")
         out.append({"defect": key, "severity": severity, "modulation": modulation,
-                    "text": _text(key, ev, modulation, severity)})
+                    "text": text})
     # A cage line explained by a rolling-element signature's sidebands is not a second finding.
     keys = {f["defect"] for f in out}
     if "ftf" in keys and "bsf" in keys:

@@ -203,6 +203,18 @@ def test_defect_rate_near_a_whole_shaft_order_is_judged_on_its_own_lines():
     assert findings(a) == {("bpfo", "none")}
 
 
+def test_defect_lines_on_shaft_harmonics_are_judged_by_the_lines_beyond():
+    # Regression: 15 balls, d/D = 0.30: 2xBSF = 3.0085 x shaft, its first three
+    # harmonics within half a bin of 3x, 6x and 9x, where they cannot be told
+    # from shaft harmonics.  No shaft-harmonic comb shows, and the harmonics from
+    # 12x up (ever further from whole orders) carry the rolling-element
+    # signature with its FTF sidebands (Randall & Antoni 2011, sec. 2.2)
+    geometry = {"balls": 15, "ball_diameter_mm": 24.3103, "pitch_diameter_mm": 80.4809}
+    a = run_bearing(geometry, 18.4107, 12000, {"rolling"}, "gravity", seed=297298,
+                    resonance_hz=2500.0, impact_m_s2=5.6514)
+    assert findings(a) == {("bsf", "cage")}
+
+
 def test_inner_race_rate_near_ten_times_shaft_speed_is_reported():
     # Regression: 16 balls, d/D = 0.248: BPFI = 9.98 x shaft, 1.2 Hz from 10x
     # (Randall & Antoni 2011: an inner-race defect, even impacts without a load zone)
@@ -258,6 +270,51 @@ def test_rolling_element_harmonics_beyond_those_searched_are_not_inner_race_evid
     a = run_bearing(geometry, 42.3759, 12000, {"rolling"}, "gravity", seed=465257,
                     resonance_hz=2500.0, impact_m_s2=5.7803, harmonics=5)
     assert findings(a) == {("bsf", "cage")}
+
+
+def test_one_line_is_one_finding_when_two_defect_rates_coincide():
+    # Regression: 9 balls, 15 deg: BPFO = 3.2707 x and 2xBSF = 3.2720 x shaft, one
+    # line.  Both races are damaged under both loads (Randall & Antoni 2011, sec.
+    # 2.2: 1x sidebands around BPFO and BPFI); the 1x sidebands of that line say
+    # outer race, so there is no rolling-element finding beside it, and its
+    # text says the two rates coincide
+    geometry = {"balls": 9, "ball_diameter_mm": 12.5415, "pitch_diameter_mm": 44.3453,
+                "contact_angle_deg": 15.0}
+    a = run_bearing(geometry, 47.2905, 44100, {"outer", "inner"}, "both", seed=452316,
+                    resonance_hz=3000.0, impact_m_s2=3.43)
+    assert findings(a) == {("bpfo", "shaft"), ("bpfi", "shaft")}
+    text = next(f["text"] for f in a.findings if f["defect"] == "bpfo")
+    assert "2xBSF" in text and "cannot tell the two apart" in text
+
+
+def test_coinciding_rates_are_told_apart_by_their_modulation():
+    # Regression: 7 balls, 15 deg: BPFI = 4.2566 x and 2xBSF = 4.2597 x shaft.
+    # The line's 1x sidebands are those of an inner race in a stationary load zone,
+    # not the FTF sidebands of a rolling element (Randall & Antoni 2011, sec. 2.2)
+    geometry = {"balls": 7, "ball_diameter_mm": 10.8626, "pitch_diameter_mm": 48.5391,
+                "contact_angle_deg": 15.0}
+    a = run_bearing(geometry, 31.1510, 12000, {"outer", "inner"}, "both", seed=305328,
+                    resonance_hz=2500.0, impact_m_s2=4.5397)
+    assert findings(a) == {("bpfo", "shaft"), ("bpfi", "shaft")}
+    # and the other way round: BPFO = 3.8016 x, 2xBSF = 3.7987 x, a rolling element
+    # carried through the load zone (FTF sidebands)
+    geometry = {"balls": 10, "ball_diameter_mm": 21.1088, "pitch_diameter_mm": 85.0728,
+                "contact_angle_deg": 15.0}
+    a = run_bearing(geometry, 43.6702, 44100, {"rolling"}, "gravity", seed=156099,
+                    resonance_hz=3000.0, impact_m_s2=2.3128)
+    assert findings(a) == {("bsf", "cage")}
+
+
+def test_lines_two_rates_place_equally_are_evidence_for_neither():
+    # Regression: 7 balls, 15 deg: 2xBSF = 4.0657 x = 1.5 x BPFO (2.7108 x), so
+    # 2xBSF's 2nd and 4th harmonics are BPFO's 3rd and 6th, to 0.001 Hz.  With no
+    # 2xBSF line of its own they are no rolling-element evidence (Randall & Antoni
+    # 2011: an outer-race defect under unbalance, 1x sidebands)
+    geometry = {"balls": 7, "ball_diameter_mm": 13.1950, "pitch_diameter_mm": 56.5210,
+                "contact_angle_deg": 15.0}
+    a = run_bearing(geometry, 12.5511, 51200, {"outer"}, "unbalance", band_hz=(1800, 4200),
+                    seed=132051, resonance_hz=3000.0, impact_m_s2=2.9209)
+    assert findings(a) == {("bpfo", "shaft")}
 
 
 def test_both_races_modulated_when_one_sideband_falls_on_the_other_race():
