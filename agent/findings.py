@@ -25,8 +25,10 @@ Rules (all thresholds are module constants, documented here):
   of noise to noise, often well above 1, and is reported as ``None``;
 - two defects whose standing fundamentals are one line are not both judged:
   the one whose expected rate is nearer to the line is (on a tie within
-  ``TIE_BINS``, the one whose own modulation shows in the sidebands), and its
-  finding's text says that the other rate falls on the same line;
+  ``TIE_BINS``, the one whose own modulation shows in the sidebands, else the
+  race), and its finding's text says that the other rate falls on the same
+  line; likewise a defect whose fundamental is a standing harmonic of
+  another's found rate;
 - a sideband that falls on a standing line of another defect found present,
   and nearer to it than that defect's own harmonic is, belongs to that defect:
   the ratio is then twice the other sideband over the line (the two are equal
@@ -343,10 +345,18 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, shaft_lines=N
 def _mark_same_line(evidence, guard, tie_hz):
     """Two defects whose standing fundamentals are one line cannot be told apart
     by their lines: one of them gets ``same_line_as`` (the other's key) and is
-    neither judged nor used to explain lines.  It is the one whose expected
-    rate lies farther from the line; when both lie equally near (within
-    ``tie_hz``), the one whose own modulation does not show in the sidebands
-    (a race's at 1x, a rolling element's at FTF)."""
+    neither judged nor used to explain lines.
+
+    It is the one whose expected rate lies farther from the line.  When both
+    lie equally near (within ``tie_hz``), it is the one whose own modulation
+    does not show in the sidebands (a race's at 1x, a rolling element's at
+    FTF); when that does not decide either, the rolling element (its impacts
+    are carried through the load zone at the cage rate, so a line without FTF
+    sidebands is more likely a race's).  A defect whose fundamental is a
+    standing harmonic (2nd or higher) of another race's or rolling element's
+    found rate is marked too, with ``same_line_harmonic``: its lines are that
+    defect's harmonics.
+    """
     standing = [k for k, ev in evidence.items()
                 if ev["found_hz"] is not None and ev["snr_db"] >= FUNDAMENTAL_SNR_DB]
     for a in standing:
@@ -357,11 +367,30 @@ def _mark_same_line(evidence, guard, tie_hz):
                 continue
             da = abs(ea["found_hz"] - ea["expected_hz"])
             db = abs(eb["found_hz"] - eb["expected_hz"])
-            if abs(da - db) <= tie_hz and _modulated(ea) != _modulated(eb):
-                if _modulated(eb):
-                    ea["same_line_as"] = b
-            elif da > db:
+            if abs(da - db) <= tie_hz:
+                ma, mb = _modulated(ea), _modulated(eb)
+                if ma != mb:
+                    lose = not ma
+                else:
+                    lose = a == "bsf" or (b != "bsf" and da > db)
+            else:
+                lose = da > db
+            if lose:
                 ea["same_line_as"] = b
+    for a in standing:
+        ea = evidence[a]
+        if ea.get("same_line_as"):
+            continue
+        for b in standing:
+            eb = evidence[b]
+            if b in (a, "ftf") or eb.get("same_line_as") or eb["found_hz"] >= ea["found_hz"]:
+                continue
+            h = round(ea["found_hz"] / eb["found_hz"])
+            if h >= 2 and any(hb == h and abs(f - ea["found_hz"]) <= guard and s >= HARMONIC_SNR_DB
+                              for hb, f, _, s in eb["lines"]):
+                ea["same_line_as"] = b
+                ea["same_line_harmonic"] = h
+                break
 
 
 def _shaft_comb(ev, lines, guard):
@@ -472,8 +501,10 @@ def judge(evidence, flagged):
         for other, oev in evidence.items():
             if oev.get("same_line_as") == key:
                 label, what, _ = DEFECTS[other]
-                text += (f" This bearing's {label} ({what.lower()} defect rate) falls on the "
-                         f"same line: the envelope cannot tell the two apart.")
+                h = oev.get("same_line_harmonic")
+                where = f"its {_ordinal(h)} harmonic" if h else "the same line"
+                text += (f" This bearing's {label} ({what.lower()} defect rate) falls on "
+                         f"{where}: the envelope cannot tell the two apart.")
         out.append({"defect": key, "severity": severity, "modulation": modulation,
                     "text": text})
     # A cage line explained by a rolling-element signature's sidebands is not a second finding.
@@ -481,6 +512,10 @@ def judge(evidence, flagged):
     if "ftf" in keys and "bsf" in keys:
         out = [f for f in out if f["defect"] != "ftf"]
     return out
+
+
+def _ordinal(n):
+    return {2: "2nd", 3: "3rd"}.get(n, f"{n}th")
 
 
 def summary_sentence(findings):

@@ -305,6 +305,31 @@ def test_coinciding_rates_are_told_apart_by_their_modulation():
     assert findings(a) == {("bsf", "cage")}
 
 
+def test_a_rate_on_a_harmonic_of_another_is_not_a_second_finding():
+    # Regression: 16 balls, 15 deg: BPFI = 9.5536 x lies 0.2 % from twice 2xBSF
+    # (4.7863 x), so every BPFI line is an even harmonic of 2xBSF.  A damaged
+    # rolling element carried through the load zone (Randall & Antoni 2011,
+    # sec. 2.2) gives one finding, which says that BPFI falls on its harmonic
+    geometry = {"balls": 16, "ball_diameter_mm": 8.868, "pitch_diameter_mm": 44.108,
+                "contact_angle_deg": 15.0}
+    a = run_bearing(geometry, 27.8078, 44100, {"rolling"}, "gravity", seed=478499,
+                    resonance_hz=5000.0, impact_m_s2=4.049)
+    assert findings(a) == {("bsf", "cage")}
+    assert "BPFI" in a.findings[0]["text"] and "2nd harmonic" in a.findings[0]["text"]
+
+
+def test_coinciding_rates_without_sidebands_go_to_the_race():
+    # Regression: 10 balls, 25 deg: BPFI = 5.7672 x and 2xBSF = 5.7676 x, one line
+    # without sidebands.  A rolling element passes the load zone at the cage rate
+    # and shows FTF sidebands (Randall & Antoni 2011, sec. 2.2); an inner race under
+    # a rotating load shows none: the line is read as the inner race's
+    geometry = {"balls": 10, "ball_diameter_mm": 6.804, "pitch_diameter_mm": 40.189,
+                "contact_angle_deg": 25.0}
+    a = run_bearing(geometry, 40.1806, 25600, {"inner"}, "unbalance", seed=422009,
+                    resonance_hz=4000.0, impact_m_s2=3.623)
+    assert findings(a) == {("bpfi", "none")}
+
+
 def test_lines_two_rates_place_equally_are_evidence_for_neither():
     # Regression: 7 balls, 15 deg: 2xBSF = 4.0657 x = 1.5 x BPFO (2.7108 x), so
     # 2xBSF's 2nd and 4th harmonics are BPFO's 3rd and 6th, to 0.001 Hz.  With no
