@@ -617,6 +617,27 @@ def test_spectral_kurtosis_finds_the_ringing_band():
     assert lo <= 6000.0 <= hi
 
 
+def test_a_band_sharing_a_longer_transform_keeps_its_kurtosis():
+    # Antoni 2007: SK is a property of the band's complex envelope, not of how
+    # finely that envelope is sampled.  A band cut back at a limit is computed at
+    # the transform length of its level's other bands; its SK must match the one
+    # computed at its own length, and Gaussian noise must still read 0.
+    model = MachineModel(shaft_hz=24.75, orders=defect_orders(9, 7.94, 39.04),
+                         faults={"outer"}, resonance_hz=3000.0, impact_m_s2=3.0,
+                         noise_rms_m_s2=0.5)
+    x = np.empty(int(4 * FS_HZ))
+    BearingSimulator(model, FS_HZ, seed=4).fill(x)
+    bands = candidate_bands(FS_HZ, 2000.0, 500.0, 0.45 * FS_HZ)
+    cut = (500.0, 4266.666666666667)
+    shared = _band_kurtosis(x, FS_HZ, 65536, bands)
+    alone = _band_kurtosis(x, FS_HZ, 65536, [cut])
+    assert shared._bins[shared.bands.index(cut)][2] > alone._bins[0][2]  # a longer transform
+    k_shared = shared.kurtosis()[shared.bands.index(cut)]
+    assert k_shared == pytest.approx(alone.kurtosis()[0], rel=0.05)
+    noise = np.random.default_rng(2).standard_normal(1_000_000)
+    assert np.all(np.abs(_band_kurtosis(noise, FS_HZ, 65536, bands).kurtosis()) < 0.1)
+
+
 # --------------------------------------------------------------------------- 9. speed
 
 def test_shaft_speed_refined_from_spectrum():

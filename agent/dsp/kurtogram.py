@@ -109,14 +109,28 @@ class BandKurtosis:
         df = fs / nperseg
         self.fs = fs
         self.nperseg = nperseg
-        self.bands = [(lo, hi) for lo, hi in bands]
-        self._bins = []
-        for lo, hi in self.bands:
+        raw = []
+        for lo, hi in bands:
             lo_bin, hi_bin = int(round(lo / df)), int(round(hi / df))
             lo_bin = max(lo_bin, 1)
             hi_bin = min(hi_bin, nperseg // 2 + 1)
-            m = fast_length(max(hi_bin - lo_bin, 8), multiple=4)
-            self._bins.append((lo_bin, hi_bin, m))
+            raw.append(((lo, hi), lo_bin, hi_bin, fast_length(max(hi_bin - lo_bin, 8), multiple=4)))
+        # A band cut back at a limit is narrower than the others of its level and
+        # would cost a transform of its own: it takes the next length shared by
+        # several bands (at most 1.5 times its own) and joins their matrix.
+        # Bands of one length are kept together, longest first.
+        counts = {}
+        for *_, m in raw:
+            counts[m] = counts.get(m, 0) + 1
+        shared = sorted(m for m, c in counts.items() if c >= 2)
+
+        def length(m):
+            return next((x for x in shared if m <= x <= 1.5 * m), m)
+
+        self.bands, self._bins = [], []
+        for band, lo_bin, hi_bin, m in sorted(raw, key=lambda r: -length(r[3])):
+            self.bands.append(band)
+            self._bins.append((lo_bin, hi_bin, length(m)))
         # bands of one decimated length m are transformed together, as the rows
         # of one matrix: (first band index, rows, m)
         self._groups = []
