@@ -191,37 +191,82 @@ def run_bearing(geometry, shaft_hz, fs, faults, modulation, band_hz=None, seed=1
     return pl.analyze(simulate(m, fs, capture_s, seed=seed))
 
 
-def test_defect_rate_near_a_whole_shaft_order_is_judged_on_its_own_lines():
-    # Regression: 8 balls, d/D = 0.263, 15 deg: BPFO = 2.983 x shaft, its first
-    # three harmonics within a bin of 3x, 6x and 9x.  The simulated machine has no
-    # shaft-harmonic comb in its envelope (no looseness), so the even outer-race
-    # impacts (Randall & Antoni 2011, sec. 2.2) must be reported, not silenced
-    geometry = {"balls": 8, "ball_diameter_mm": 20.23, "pitch_diameter_mm": 76.86,
-                "contact_angle_deg": 15.0}
-    a = run_bearing(geometry, 10.13, 48000, {"outer"}, "none", band_hz=(2400, 5600),
-                    seed=64246, resonance_hz=4000.0, impact_m_s2=4.1)
-    assert findings(a) == {("bpfo", "none")}
+def _bearing(balls, ball_mm, pitch_mm, angle_deg=0.0):
+    return {"balls": balls, "ball_diameter_mm": ball_mm, "pitch_diameter_mm": pitch_mm,
+            "contact_angle_deg": angle_deg}
 
 
-def test_defect_lines_on_shaft_harmonics_are_judged_by_the_lines_beyond():
-    # Regression: 15 balls, d/D = 0.30: 2xBSF = 3.0085 x shaft, its first three
-    # harmonics within half a bin of 3x, 6x and 9x, where they cannot be told
-    # from shaft harmonics.  No shaft-harmonic comb shows, and the harmonics from
-    # 12x up (ever further from whole orders) carry the rolling-element
-    # signature with its FTF sidebands (Randall & Antoni 2011, sec. 2.2)
-    geometry = {"balls": 15, "ball_diameter_mm": 24.3103, "pitch_diameter_mm": 80.4809}
-    a = run_bearing(geometry, 18.4107, 12000, {"rolling"}, "gravity", seed=297298,
-                    resonance_hz=2500.0, impact_m_s2=5.6514)
-    assert findings(a) == {("bsf", "cage")}
+# Coincidences found by tools/sweep, each once a missed or a wrong finding, with
+# the exact bearing, machine and simulator seed that showed it.  The expected
+# findings follow from the physics of the fault (Randall & Antoni 2011, sec. 2.2:
+# outer race even or 1x-modulated under a rotating load, inner race 1x-modulated
+# in a stationary load zone, rolling element at 2xBSF with FTF sidebands).
+# (bearing, shaft Hz, fs, faults, load, run_bearing options, expected findings)
+SWEEP_CASES = [
+    # BPFO = 2.983 x: its first three harmonics within a bin of 3x, 6x, 9x, and no
+    # shaft-harmonic comb in the envelope (no looseness): reported, not silenced
+    pytest.param(_bearing(8, 20.23, 76.86, 15.0), 10.13, 48000, {"outer"}, "none",
+                 dict(band_hz=(2400, 5600), seed=64246, resonance_hz=4000.0, impact_m_s2=4.1),
+                 {("bpfo", "none")}, id="bpfo-near-3x"),
+    # 2xBSF = 3.0085 x: the first three harmonics within half a bin of 3x, 6x, 9x;
+    # the harmonics from 12x up carry the signature
+    pytest.param(_bearing(15, 24.3103, 80.4809), 18.4107, 12000, {"rolling"}, "gravity",
+                 dict(seed=297298, resonance_hz=2500.0, impact_m_s2=5.6514),
+                 {("bsf", "cage")}, id="2xbsf-on-3x"),
+    # BPFI = 9.98 x, 1.2 Hz from 10x
+    pytest.param(_bearing(16, 13.2183, 53.3678), 50.9037, 51200, {"inner"}, "none",
+                 dict(seed=668788, resonance_hz=4000.0, impact_m_s2=3.1386),
+                 {("bpfi", "none")}, id="bpfi-near-10x"),
+    # 2xBSF = 45.8 Hz, FTF = 5.04 Hz: the 8th FTF harmonic's window holds the lower
+    # FTF sideband of 2xBSF, which stays the rolling element's
+    pytest.param(_bearing(7, 15.9852, 56.4995), 14.0701, 44100, {"rolling"}, "gravity",
+                 dict(band_hz=(2400, 5600), seed=168991, resonance_hz=4000.0,
+                      impact_m_s2=4.4151),
+                 {("bsf", "cage")}, id="cage-harmonic-on-2xbsf-sideband"),
+    # 2xBSF + 2 FTF lies 0.4 % from BPFI: a rolling element's second cage sideband
+    pytest.param(_bearing(9, 13.84, 65.71, 25.0), 55.02, 51200, {"rolling"}, "gravity",
+                 dict(band_hz=(2400, 5600), seed=170914, resonance_hz=4000.0, impact_m_s2=5.7),
+                 {("bsf", "cage")}, id="2xbsf-plus-2ftf-on-bpfi"),
+    # 5 harmonics searched: BPFI's 3rd and 4th fall on 2xBSF's 6th and 8th, which
+    # 2xBSF did not search; they are the rolling element's
+    pytest.param(_bearing(16, 17.3356, 81.6605, 40.0), 42.3759, 12000, {"rolling"}, "gravity",
+                 dict(seed=465257, resonance_hz=2500.0, impact_m_s2=5.7803, harmonics=5),
+                 {("bsf", "cage")}, id="bpfi-on-unsearched-2xbsf-harmonics"),
+    # BPFI = 4.2566 x, 2xBSF = 4.2597 x, one line: its 1x sidebands are an inner
+    # race's in a stationary load zone, not a rolling element's FTF sidebands
+    pytest.param(_bearing(7, 10.8626, 48.5391, 15.0), 31.1510, 12000, {"outer", "inner"},
+                 "both", dict(seed=305328, resonance_hz=2500.0, impact_m_s2=4.5397),
+                 {("bpfo", "shaft"), ("bpfi", "shaft")}, id="bpfi-2xbsf-one-line-1x"),
+    # BPFO = 3.8016 x, 2xBSF = 3.7987 x, one line with FTF sidebands: a rolling element
+    pytest.param(_bearing(10, 21.1088, 85.0728, 15.0), 43.6702, 44100, {"rolling"}, "gravity",
+                 dict(seed=156099, resonance_hz=3000.0, impact_m_s2=2.3128),
+                 {("bsf", "cage")}, id="bpfo-2xbsf-one-line-ftf"),
+    # BPFI = 5.7672 x, 2xBSF = 5.7676 x, one line without sidebands: a rolling
+    # element would show FTF sidebands, an inner race under a rotating load none
+    pytest.param(_bearing(10, 6.804, 40.189, 25.0), 40.1806, 25600, {"inner"}, "unbalance",
+                 dict(seed=422009, resonance_hz=4000.0, impact_m_s2=3.623),
+                 {("bpfi", "none")}, id="bpfi-2xbsf-one-line-plain"),
+    # 2xBSF = 1.5 x BPFO: 2xBSF's 2nd and 4th harmonics are BPFO's 3rd and 6th to
+    # 0.001 Hz; with no 2xBSF line of its own they are no rolling-element evidence
+    pytest.param(_bearing(7, 13.1950, 56.5210, 15.0), 12.5511, 51200, {"outer"}, "unbalance",
+                 dict(band_hz=(1800, 4200), seed=132051, resonance_hz=3000.0,
+                      impact_m_s2=2.9209),
+                 {("bpfo", "shaft")}, id="2xbsf-harmonics-on-bpfo-harmonics"),
+    # 6 balls, BPFI + 1x lies 0.9 Hz from 2 x BPFO: the upper sideband is BPFO's,
+    # the lower one still shows the inner race's 1x modulation
+    pytest.param(_bearing(6, 6.157, 27.05), 18.99, 25600, {"outer", "inner"}, "both",
+                 dict(band_hz=(1800, 4200), seed=889014, resonance_hz=3000.0, impact_m_s2=5.8),
+                 {("bpfo", "shaft"), ("bpfi", "shaft")}, id="bpfi-sideband-on-2bpfo"),
+]
 
 
-def test_inner_race_rate_near_ten_times_shaft_speed_is_reported():
-    # Regression: 16 balls, d/D = 0.248: BPFI = 9.98 x shaft, 1.2 Hz from 10x
-    # (Randall & Antoni 2011: an inner-race defect, even impacts without a load zone)
-    geometry = {"balls": 16, "ball_diameter_mm": 13.2183, "pitch_diameter_mm": 53.3678}
-    a = run_bearing(geometry, 50.9037, 51200, {"inner"}, "none", seed=668788,
-                    resonance_hz=4000.0, impact_m_s2=3.1386)
-    assert findings(a) == {("bpfi", "none")}
+@pytest.mark.parametrize("geometry, shaft_hz, fs, faults, modulation, options, expected",
+                         SWEEP_CASES)
+def test_coincidence_found_by_the_sweep(geometry, shaft_hz, fs, faults, modulation, options,
+                                        expected):
+    a = run_bearing(geometry, shaft_hz, fs, faults, modulation, **options)
+    assert a.quality == ()
+    assert findings(a) == expected
 
 
 def test_automatic_band_reaches_a_low_resonance_on_a_fast_shaft():
@@ -229,128 +274,29 @@ def test_automatic_band_reaches_a_low_resonance_on_a_fast_shaft():
     # wide bands qualify, and none of the tree's wide bands above 500 Hz held the
     # 3 kHz resonance.  Spectral kurtosis must find the ringing band (Antoni 2007)
     # and the rolling element its cage-rate modulation (Randall & Antoni 2011)
-    geometry = {"balls": 13, "ball_diameter_mm": 20.5997, "pitch_diameter_mm": 81.5507}
-    a = run_bearing(geometry, 56.9327, 48000, {"rolling"}, "gravity", seed=362889,
-                    resonance_hz=3000.0, impact_m_s2=3.4272)
+    a = run_bearing(_bearing(13, 20.5997, 81.5507), 56.9327, 48000, {"rolling"}, "gravity",
+                    seed=362889, resonance_hz=3000.0, impact_m_s2=3.4272)
     lo, hi = a.envelope["band_hz"]
     assert lo < 3000.0 < hi
     assert findings(a) == {("bsf", "cage")}
 
 
-def test_rolling_element_sideband_is_not_taken_by_a_cage_harmonic():
-    # Regression: 7 balls, 2xBSF = 45.8 Hz, FTF = 5.04 Hz; the 8th FTF harmonic's
-    # window (40.3 Hz) holds the lower FTF sideband of 2xBSF (40.75 Hz).  The line
-    # is the sideband's, and the rolling-element signature keeps its cage-rate
-    # modulation (Randall & Antoni 2011, sec. 2.2: FTF sidebands around 2xBSF)
-    geometry = {"balls": 7, "ball_diameter_mm": 15.9852, "pitch_diameter_mm": 56.4995}
-    a = run_bearing(geometry, 14.0701, 44100, {"rolling"}, "gravity", band_hz=(2400, 5600),
-                    seed=168991, resonance_hz=4000.0, impact_m_s2=4.4151)
-    assert findings(a) == {("bsf", "cage")}
-
-
-def test_second_cage_sideband_of_a_rolling_element_is_not_an_inner_race_finding():
-    # Regression: 9 balls, 25 deg, shaft 55 Hz: 2xBSF + 2 FTF = 296.1 Hz lies 0.4 %
-    # from BPFI (294.9 Hz).  A rolling element carried through the load zone puts
-    # sidebands at +-FTF and +-2 FTF (Randall & Antoni 2011, sec. 2.2): the line
-    # belongs to it, and no inner-race finding may come of it
-    geometry = {"balls": 9, "ball_diameter_mm": 13.84, "pitch_diameter_mm": 65.71,
-                "contact_angle_deg": 25.0}
-    a = run_bearing(geometry, 55.02, 51200, {"rolling"}, "gravity", band_hz=(2400, 5600),
-                    seed=170914, resonance_hz=4000.0, impact_m_s2=5.7)
-    assert findings(a) == {("bsf", "cage")}
-
-
-def test_rolling_element_harmonics_beyond_those_searched_are_not_inner_race_evidence():
-    # Regression: 16 balls, 40 deg, shaft 42.4 Hz, 12 kHz, 5 harmonics searched:
-    # BPFI (9.30 x) lies 1.4 % from 2 x 2xBSF (9.17 x), and BPFI's 3rd and 4th
-    # harmonics on 2xBSF's 6th and 8th, which 2xBSF did not search.  They are
-    # the rolling element's (whole multiples of its found rate), not an inner race's
-    geometry = {"balls": 16, "ball_diameter_mm": 17.3356, "pitch_diameter_mm": 81.6605,
-                "contact_angle_deg": 40.0}
-    a = run_bearing(geometry, 42.3759, 12000, {"rolling"}, "gravity", seed=465257,
-                    resonance_hz=2500.0, impact_m_s2=5.7803, harmonics=5)
-    assert findings(a) == {("bsf", "cage")}
-
-
-def test_one_line_is_one_finding_when_two_defect_rates_coincide():
-    # Regression: 9 balls, 15 deg: BPFO = 3.2707 x and 2xBSF = 3.2720 x shaft, one
-    # line.  Both races are damaged under both loads (Randall & Antoni 2011, sec.
-    # 2.2: 1x sidebands around BPFO and BPFI); the 1x sidebands of that line say
-    # outer race, so there is no rolling-element finding beside it, and its
-    # text says the two rates coincide
-    geometry = {"balls": 9, "ball_diameter_mm": 12.5415, "pitch_diameter_mm": 44.3453,
-                "contact_angle_deg": 15.0}
-    a = run_bearing(geometry, 47.2905, 44100, {"outer", "inner"}, "both", seed=452316,
-                    resonance_hz=3000.0, impact_m_s2=3.43)
+def test_one_line_is_one_finding_that_names_the_other_rate():
+    # Regression: BPFO = 3.2707 x and 2xBSF = 3.2720 x, one line; both races damaged
+    # under both loads (Randall & Antoni 2011, sec. 2.2).  The line's 1x sidebands
+    # say outer race: no rolling-element finding beside it, and its text says so
+    a = run_bearing(_bearing(9, 12.5415, 44.3453, 15.0), 47.2905, 44100, {"outer", "inner"},
+                    "both", seed=452316, resonance_hz=3000.0, impact_m_s2=3.43)
     assert findings(a) == {("bpfo", "shaft"), ("bpfi", "shaft")}
     text = next(f["text"] for f in a.findings if f["defect"] == "bpfo")
     assert "2xBSF" in text and "cannot tell the two apart" in text
-
-
-def test_coinciding_rates_are_told_apart_by_their_modulation():
-    # Regression: 7 balls, 15 deg: BPFI = 4.2566 x and 2xBSF = 4.2597 x shaft.
-    # The line's 1x sidebands are those of an inner race in a stationary load zone,
-    # not the FTF sidebands of a rolling element (Randall & Antoni 2011, sec. 2.2)
-    geometry = {"balls": 7, "ball_diameter_mm": 10.8626, "pitch_diameter_mm": 48.5391,
-                "contact_angle_deg": 15.0}
-    a = run_bearing(geometry, 31.1510, 12000, {"outer", "inner"}, "both", seed=305328,
-                    resonance_hz=2500.0, impact_m_s2=4.5397)
-    assert findings(a) == {("bpfo", "shaft"), ("bpfi", "shaft")}
-    # and the other way round: BPFO = 3.8016 x, 2xBSF = 3.7987 x, a rolling element
-    # carried through the load zone (FTF sidebands)
-    geometry = {"balls": 10, "ball_diameter_mm": 21.1088, "pitch_diameter_mm": 85.0728,
-                "contact_angle_deg": 15.0}
-    a = run_bearing(geometry, 43.6702, 44100, {"rolling"}, "gravity", seed=156099,
-                    resonance_hz=3000.0, impact_m_s2=2.3128)
-    assert findings(a) == {("bsf", "cage")}
-
-
-def test_a_rate_on_a_harmonic_of_another_is_not_a_second_finding():
-    # Regression: 16 balls, 15 deg: BPFI = 9.5536 x lies 0.2 % from twice 2xBSF
-    # (4.7863 x), so every BPFI line is an even harmonic of 2xBSF.  A damaged
-    # rolling element carried through the load zone (Randall & Antoni 2011,
-    # sec. 2.2) gives one finding, which says that BPFI falls on its harmonic
-    geometry = {"balls": 16, "ball_diameter_mm": 8.868, "pitch_diameter_mm": 44.108,
-                "contact_angle_deg": 15.0}
-    a = run_bearing(geometry, 27.8078, 44100, {"rolling"}, "gravity", seed=478499,
-                    resonance_hz=5000.0, impact_m_s2=4.049)
+    # BPFI = 9.5536 x lies 0.2 % from twice 2xBSF (4.7863 x): every BPFI line is an
+    # even harmonic of 2xBSF.  A damaged rolling element gives one finding, which
+    # says that BPFI falls on its 2nd harmonic
+    a = run_bearing(_bearing(16, 8.868, 44.108, 15.0), 27.8078, 44100, {"rolling"}, "gravity",
+                    seed=478499, resonance_hz=5000.0, impact_m_s2=4.049)
     assert findings(a) == {("bsf", "cage")}
     assert "BPFI" in a.findings[0]["text"] and "2nd harmonic" in a.findings[0]["text"]
-
-
-def test_coinciding_rates_without_sidebands_go_to_the_race():
-    # Regression: 10 balls, 25 deg: BPFI = 5.7672 x and 2xBSF = 5.7676 x, one line
-    # without sidebands.  A rolling element passes the load zone at the cage rate
-    # and shows FTF sidebands (Randall & Antoni 2011, sec. 2.2); an inner race under
-    # a rotating load shows none: the line is read as the inner race's
-    geometry = {"balls": 10, "ball_diameter_mm": 6.804, "pitch_diameter_mm": 40.189,
-                "contact_angle_deg": 25.0}
-    a = run_bearing(geometry, 40.1806, 25600, {"inner"}, "unbalance", seed=422009,
-                    resonance_hz=4000.0, impact_m_s2=3.623)
-    assert findings(a) == {("bpfi", "none")}
-
-
-def test_lines_two_rates_place_equally_are_evidence_for_neither():
-    # Regression: 7 balls, 15 deg: 2xBSF = 4.0657 x = 1.5 x BPFO (2.7108 x), so
-    # 2xBSF's 2nd and 4th harmonics are BPFO's 3rd and 6th, to 0.001 Hz.  With no
-    # 2xBSF line of its own they are no rolling-element evidence (Randall & Antoni
-    # 2011: an outer-race defect under unbalance, 1x sidebands)
-    geometry = {"balls": 7, "ball_diameter_mm": 13.1950, "pitch_diameter_mm": 56.5210,
-                "contact_angle_deg": 15.0}
-    a = run_bearing(geometry, 12.5511, 51200, {"outer"}, "unbalance", band_hz=(1800, 4200),
-                    seed=132051, resonance_hz=3000.0, impact_m_s2=2.9209)
-    assert findings(a) == {("bpfo", "shaft")}
-
-
-def test_both_races_modulated_when_one_sideband_falls_on_the_other_race():
-    # Regression: 6 balls, BPFO + BPFI = 6 x shaft: BPFI + 1x (4.68 x) lies 0.9 Hz
-    # from 2 x BPFO (4.63 x).  The upper sideband belongs to BPFO; the lower one
-    # still shows the stationary load zone's 1x modulation of the inner race
-    # (Randall & Antoni 2011, sec. 2.2)
-    geometry = {"balls": 6, "ball_diameter_mm": 6.157, "pitch_diameter_mm": 27.05}
-    a = run_bearing(geometry, 18.99, 25600, {"outer", "inner"}, "both", band_hz=(1800, 4200),
-                    seed=889014, resonance_hz=3000.0, impact_m_s2=5.8)
-    assert findings(a) == {("bpfo", "shaft"), ("bpfi", "shaft")}
 
 
 # --------------------------------------------------------------------------- signal quality

@@ -597,14 +597,20 @@ def test_spectral_kurtosis_of_a_tone_is_minus_one():
     np.testing.assert_allclose(k, -1.0, atol=0.01)
 
 
-def test_spectral_kurtosis_finds_the_ringing_band():
-    # Antoni 2006/2007: impacts ringing a resonance give the highest SK in the band
-    # that holds the resonance
+def _ringing_outer_race(resonance_hz):
+    """4 s of a 9-ball bearing's outer-race impacts ringing a resonance, in noise."""
     model = MachineModel(shaft_hz=24.75, orders=defect_orders(9, 7.94, 39.04),
-                         faults={"outer"}, resonance_hz=6000.0, impact_m_s2=3.0,
+                         faults={"outer"}, resonance_hz=resonance_hz, impact_m_s2=3.0,
                          noise_rms_m_s2=0.5)
     x = np.empty(int(4 * FS_HZ))
     BearingSimulator(model, FS_HZ, seed=4).fill(x)
+    return x
+
+
+def test_spectral_kurtosis_finds_the_ringing_band():
+    # Antoni 2006/2007: impacts ringing a resonance give the highest SK in the band
+    # that holds the resonance
+    x = _ringing_outer_race(6000.0)
     bands = candidate_bands(FS_HZ, 400.0, 500.0, 0.45 * FS_HZ, levels=6)
     lo, hi, k = _band_kurtosis(x, FS_HZ, 8192, bands).best()
     assert lo <= 6000.0 <= hi and k > 1.0
@@ -622,11 +628,7 @@ def test_a_band_sharing_a_longer_transform_keeps_its_kurtosis():
     # finely that envelope is sampled.  A band cut back at a limit is computed at
     # the transform length of its level's other bands; its SK must match the one
     # computed at its own length, and Gaussian noise must still read 0.
-    model = MachineModel(shaft_hz=24.75, orders=defect_orders(9, 7.94, 39.04),
-                         faults={"outer"}, resonance_hz=3000.0, impact_m_s2=3.0,
-                         noise_rms_m_s2=0.5)
-    x = np.empty(int(4 * FS_HZ))
-    BearingSimulator(model, FS_HZ, seed=4).fill(x)
+    x = _ringing_outer_race(3000.0)
     bands = candidate_bands(FS_HZ, 2000.0, 500.0, 0.45 * FS_HZ)
     cut = (500.0, 4266.666666666667)
     shared = _band_kurtosis(x, FS_HZ, 65536, bands)
