@@ -244,9 +244,12 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, shaft_lines=N
     below), on the cage-rate comb of a rolling-element signature (races
     only), within two bins of a sideband of another defect, or of a
     standing line of another defect whose fundamental stands out -- unless
-    this defect expects that line nearer than the other one does (two defect
-    rates a percent or two apart share their lines; the line goes to the
-    nearer one, not to neither).
+    this defect expects that line nearer than the other one does, by more
+    than ``TIE_BINS`` (two defect rates a percent or two apart share their
+    lines; the line goes to the nearer one, not to neither; on a tie, to
+    neither).  Before that, of two defects whose standing fundamentals are
+    one line, or one on a harmonic of the other, one is set aside
+    (``same_line_as``): it is neither judged nor used to explain lines.
 
     Near a shaft harmonic means within two bins of it when the envelope
     spectrum shows a comb of shaft harmonics that this defect does not
