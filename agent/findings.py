@@ -237,7 +237,7 @@ def _cage_comb_hz(evidence):
     return bsf["found_hz"] * ftf["expected_hz"] / bsf["expected_hz"]
 
 
-def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, shaft_lines=None):
+def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaft=None):
     """Count the harmonics that stand out and are not explained by something else.
 
     A line is *ambiguous* when it lies near a low shaft harmonic (see
@@ -253,7 +253,7 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, shaft_lines=N
 
     Near a shaft harmonic means within two bins of it when the envelope
     spectrum shows a comb of shaft harmonics that this defect does not
-    explain (``shaft_lines``: at least ``SHAFT_COMB_MIN_LINES`` of orders
+    explain (``standing_shaft``: at least ``SHAFT_COMB_MIN_LINES`` of orders
     3-10 away from the defect's own harmonics), as looseness and rubs put
     there; without such a comb only within ``SHAFT_LINE_BINS``, where the
     two cannot be told apart.  A defect whose rate is close to a whole
@@ -277,7 +277,7 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, shaft_lines=N
         a shaft harmonic without a comb) and ``fundamental_ambiguous``.
     shaft_hz, df_hz : float
     max_shaft_order : int, default 10
-    shaft_lines : list of (int, float), optional
+    standing_shaft : list of (int, float), optional
         :func:`shaft_lines` of the same spectrum.  Without it every low
         shaft harmonic is assumed present (the cautious reading).
     """
@@ -287,7 +287,7 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, shaft_lines=N
     cage_hz = _cage_comb_hz(evidence)
     for key, ev in evidence.items():
         others = _explaining_lines(evidence, shaft_hz, key)
-        comb = _shaft_comb(ev, shaft_lines, guard)
+        comb = _shaft_comb(ev, standing_shaft, guard)
         shaft_guard = guard if comb else SHAFT_LINE_BINS * df_hz
         count, best, fund_amb = 0, 0.0, ev["found_hz"] is None
         on_shaft_only = False  # the fundamental is ambiguous for a shaft harmonic alone

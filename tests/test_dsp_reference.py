@@ -481,7 +481,7 @@ def _comb_spectrum(df, lines, n=4000, seed=9):
 def _judged(amp, df, shaft_hz, key_hz):
     from agent.findings import count_harmonics, judge, search_defect, shaft_lines
     ev = {"bpfo": search_defect(amp, df, key_hz, 8, 0.02, modulation_hz=shaft_hz)}
-    count_harmonics(ev, shaft_hz, df, shaft_lines=shaft_lines(amp, df, shaft_hz))
+    count_harmonics(ev, shaft_hz, df, standing_shaft=shaft_lines(amp, df, shaft_hz))
     return {f["defect"] for f in judge(ev, flagged=False)}
 
 
@@ -499,7 +499,7 @@ def test_a_shaft_harmonic_comb_silences_a_defect_rate_on_it():
     from agent.findings import count_harmonics, search_defect, shaft_lines
     amp = _comb_spectrum(df, comb + defect)
     ev = {"bpfo": search_defect(amp, df, bpfo, 8, 0.02, modulation_hz=shaft)}
-    count_harmonics(ev, shaft, df, shaft_lines=shaft_lines(amp, df, shaft))
+    count_harmonics(ev, shaft, df, standing_shaft=shaft_lines(amp, df, shaft))
     assert ev["bpfo"]["fundamental_ambiguous"]
 
 
