@@ -16,7 +16,9 @@ Rules (all thresholds are module constants, documented here):
   shows a comb of shaft harmonics of its own (looseness, rubs: at least
   ``SHAFT_COMB_MIN_LINES`` standing lines at orders 3-10 that are not the
   defect's harmonics), and, without such a comb, one within
-  ``SHAFT_LINE_BINS`` of a shaft harmonic (too close to tell apart);
+  ``SHAFT_LINE_BINS`` of a shaft harmonic (too close to tell apart); so is a
+  fundamental that is only a ripple on the flank of another defect's line
+  ``FLANK_STRONGER_DB`` stronger (slip broadens strong lines);
 - a defect signature is present when its fundamental stands out by at least
   ``FUNDAMENTAL_SNR_DB`` and at least ``MIN_HARMONICS`` unambiguous harmonics
   (the fundamental included) stand out;
@@ -45,7 +47,7 @@ from __future__ import annotations
 
 import math
 
-from agent.dsp.peaks import find_peak, noise_floor, sideband_ratio, snr_db
+from agent.dsp.peaks import _floats, find_peak, noise_floor, sideband_ratio, snr_db
 
 __all__ = ["DEFECTS", "search_defect", "shaft_lines", "count_harmonics", "judge",
            "summary_sentence", "modulation_meaning"]
@@ -67,6 +69,14 @@ SHAFT_LINE_BINS = 0.5
 #: Two defects' expected positions of a line closer than this (in bins) are a
 #: tie: the line is evidence for neither.
 TIE_BINS = 0.25
+#: A peak within this relative distance of another defect's line that is
+#: FLANK_STRONGER_DB stronger, with no dip deeper than FLANK_DIP_DB between
+#: them, is a ripple on that line's flank.
+FLANK_SPAN = 0.05
+FLANK_STRONGER_DB = 10.0
+FLANK_DIP_DB = 3.0
+_FLANK_STRONGER = 10.0 ** (FLANK_STRONGER_DB / 20.0)
+_FLANK_DIP = 10.0 ** (FLANK_DIP_DB / 20.0)
 
 #: key -> (label, what it is, modulating frequency: "shaft" | "cage" | None)
 DEFECTS = {
@@ -237,7 +247,8 @@ def _cage_comb_hz(evidence):
     return bsf["found_hz"] * ftf["expected_hz"] / bsf["expected_hz"]
 
 
-def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaft=None):
+def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaft=None,
+                    amp=None):
     """Count the harmonics that stand out and are not explained by something else.
 
     A line is *ambiguous* when it lies near a low shaft harmonic (see
@@ -280,6 +291,10 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
     standing_shaft : list of (int, float), optional
         :func:`shaft_lines` of the same spectrum.  Without it every low
         shaft harmonic is assumed present (the cautious reading).
+    amp : ndarray or list of float, optional
+        The spectrum itself.  With it, a fundamental that lies on the flank
+        of a much stronger line of another defect (:func:`_on_flank`) is
+        ambiguous too.
     """
     guard = 2.0 * df_hz
     tie_hz = TIE_BINS * df_hz
@@ -305,6 +320,9 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
                 for fo, expected in others)
             amb = amb_shaft or amb_other
             if h == 1:
+                if amp is not None and not amb_other:
+                    amb_other = _on_flank(amp, df_hz, f, ev["amplitude"], key, evidence)
+                    amb = amb or amb_other
                 fund_amb = amb
                 on_shaft_only = amb_shaft and not amb_other
             if amb:
@@ -343,6 +361,27 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
             ev["sideband_ratio"] = None
             ev["sideband_snr_db"] = None
     return evidence
+
+
+def _on_flank(amp, df_hz, f_hz, amplitude, skip, evidence):
+    """True when a peak at ``f_hz`` is a ripple on the flank of a line of
+    another defect: a standing line within ``FLANK_SPAN`` of it (relative),
+    ``FLANK_STRONGER_DB`` stronger, with no dip of more than ``FLANK_DIP_DB``
+    between the two.  Slip makes a strong line broad, and its flank carries
+    local maxima that stand over the median floor further out."""
+    k = int(round(f_hz / df_hz))
+    for key, ev in evidence.items():
+        if key == skip or ev.get("same_line_as"):
+            continue
+        for _, f, a, s in ev["lines"]:
+            if s < FUNDAMENTAL_SNR_DB or abs(f - f_hz) > FLANK_SPAN * f_hz \
+                    or a < amplitude * _FLANK_STRONGER:
+                continue
+            j = int(round(f / df_hz))
+            between = _floats(amp, min(j, k) + 1, max(j, k))
+            if between and amplitude <= min(between) * _FLANK_DIP:
+                return True
+    return False
 
 
 def _mark_same_line(evidence, guard, tie_hz):

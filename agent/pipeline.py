@@ -531,7 +531,7 @@ class Pipeline:
                                      p.envelope.tolerance, modulation_hz=fm)
         out["bsf"]["spin_hz"] = freqs["bsf"]
         return count_harmonics(out, shaft_hz, self.df_hz,
-                               standing_shaft=shaft_lines(amp, self.df_hz, shaft_hz))
+                               standing_shaft=shaft_lines(amp, self.df_hz, shaft_hz), amp=amp)
 
     def analyze(self, x, extra_flags=()):
         """Analyse a whole array (m/s²) as one capture."""

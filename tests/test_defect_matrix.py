@@ -252,6 +252,19 @@ SWEEP_CASES = [
                  dict(band_hz=(1800, 4200), seed=132051, resonance_hz=3000.0,
                       impact_m_s2=2.9209),
                  {("bpfo", "shaft")}, id="2xbsf-harmonics-on-bpfo-harmonics"),
+    # A weak peak 1.8 % from BPFI lies on the flank of BPFO's strong 2nd harmonic,
+    # broadened by slip: it is no inner-race line
+    pytest.param(_bearing(12, 24.04, 75.236), 48.9897, 51200, {"outer"}, "unbalance",
+                 dict(seed=422892, resonance_hz=3000.0, impact_m_s2=3.585),
+                 {("bpfo", "shaft")}, id="bpfi-peak-on-bpfo-flank"),
+    # the same with 2xBSF on the flank of BPFO's fundamental, 8 Hz away
+    pytest.param(_bearing(14, 9.98, 63.887), 35.329, 44100, {"outer"}, "none",
+                 dict(band_hz=(1800, 4200), seed=535606, resonance_hz=3000.0, impact_m_s2=5.626),
+                 {("bpfo", "none")}, id="2xbsf-peak-on-bpfo-flank"),
+    # and with 2xBSF on the flank of BPFI's fundamental
+    pytest.param(_bearing(11, 9.76, 61.169, 15.0), 46.654, 44100, {"inner"}, "unbalance",
+                 dict(seed=830445, resonance_hz=5000.0, impact_m_s2=3.502),
+                 {("bpfi", "none")}, id="2xbsf-peak-on-bpfi-flank"),
     # 6 balls, BPFI + 1x lies 0.9 Hz from 2 x BPFO: the upper sideband is BPFO's,
     # the lower one still shows the inner race's 1x modulation
     pytest.param(_bearing(6, 6.157, 27.05), 18.99, 25600, {"outer", "inner"}, "both",

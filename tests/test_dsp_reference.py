@@ -503,6 +503,30 @@ def test_a_shaft_harmonic_comb_silences_a_defect_rate_on_it():
     assert ev["bpfo"]["fundamental_ambiguous"]
 
 
+def test_a_ripple_on_a_strong_lines_flank_is_not_a_defect_line():
+    # Randall & Antoni 2011, sec. 2.1: random slip smears the envelope lines of a
+    # bearing defect; a strong line then has broad flanks, and a ripple on them is
+    # no line of another defect.  A separate weak line, with a dip before it, is.
+    from agent.findings import count_harmonics, judge, search_defect
+    df, f0, fo = 0.5, 100.0, 107.0
+    bins = np.arange(4000) * df
+    strong = 1e-3 + sum(0.5 / h / (1.0 + ((bins - h * f0) / 0.8) ** 2) for h in range(1, 9))
+    # a weak "defect" expected at 107 Hz, its peak at 105 Hz (the low edge of its
+    # 2 % window, 5 Hz from the strong line): a ripple on the flank ...
+    ripple = strong.copy()
+    k = int(105.0 / df)
+    ripple[k] *= 1.6
+    # ... or a line of its own, two bins past a dip
+    separate = 1e-3 + sum(0.5 / h / (1.0 + ((bins - h * f0) / 0.2) ** 2) for h in range(1, 9))
+    separate[k] += 0.01
+    for amp, present in ((ripple, False), (separate, True)):
+        ev = {"bpfo": search_defect(amp, df, f0, 8, 0.02),
+              "bpfi": search_defect(amp, df, fo, 1, 0.02)}
+        count_harmonics(ev, 37.0, df, standing_shaft=[], amp=amp)
+        assert ev["bpfi"]["snr_db"] > 10.0  # over the median floor it looks like a line
+        assert ev["bpfi"]["fundamental_ambiguous"] is (not present)
+
+
 def test_a_defect_line_on_a_shaft_harmonic_cannot_be_told_from_it():
     # from memory: lines closer than about half a bin cannot be separated in a
     # Hann-windowed spectrum.  BPFO = 3.001 x shaft sits on 3x: without other
