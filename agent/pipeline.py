@@ -542,5 +542,5 @@ class Pipeline:
 
 def _public(ev):
     keep = ("expected_hz", "found_hz", "amplitude", "snr_db", "harmonics", "searched",
-            "sideband_ratio", "modulation_hz", "spin_hz")
+            "sideband_ratio", "modulation_hz", "spin_hz", "same_line_as", "same_line_harmonic")
     return {k: ev[k] for k in keep if k in ev}

@@ -104,6 +104,13 @@ def analysis_report(d, source=""):
         out.append(f"  sideband ratio = (lower + upper sideband) / line, shown where the line stands "
                    f"{HARMONIC_SNR_DB:g} dB above the floor")
         out.append("  (2 x the other sideband / line where one sideband is another defect's line)")
+        for key, ev in d["defects"].items():
+            other = ev.get("same_line_as")
+            if other:
+                h = ev.get("same_line_harmonic")
+                where = f"a harmonic ({h}x) of {DEFECTS[other][0]}" if h else f"the {DEFECTS[other][0]} line"
+                out.append(f"  {DEFECTS[key][0]} falls on {where}: not judged on its own "
+                           f"(the envelope cannot tell the two apart)")
         out.append("")
 
     out.append("Findings")

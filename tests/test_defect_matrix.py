@@ -303,6 +303,10 @@ def test_one_line_is_one_finding_that_names_the_other_rate():
     assert findings(a) == {("bpfo", "shaft"), ("bpfi", "shaft")}
     text = next(f["text"] for f in a.findings if f["defect"] == "bpfo")
     assert "2xBSF" in text and "cannot tell the two apart" in text
+    # the analysis JSON and the report's table say it too
+    from agent.report import analysis_report
+    assert a.to_dict()["defects"]["bsf"]["same_line_as"] == "bpfo"
+    assert "2xBSF falls on the BPFO line" in analysis_report(a.to_dict(), source="test")
     # BPFI = 9.5536 x lies 0.2 % from twice 2xBSF (4.7863 x): every BPFI line is an
     # even harmonic of 2xBSF.  A damaged rolling element gives one finding, which
     # says that BPFI falls on its 2nd harmonic
