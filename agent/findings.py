@@ -77,6 +77,9 @@ FLANK_STRONGER_DB = 10.0
 FLANK_DIP_DB = 3.0
 _FLANK_STRONGER = 10.0 ** (FLANK_STRONGER_DB / 20.0)
 _FLANK_DIP = 10.0 ** (FLANK_DIP_DB / 20.0)
+#: A defect's line is taken for another defect's harmonic only when that
+#: defect's fundamental is at least this fraction of it (-6 dB).
+FAMILY_MIN_RATIO = 0.5
 
 #: key -> (label, what it is, modulating frequency: "shaft" | "cage" | None)
 DEFECTS = {
@@ -200,10 +203,13 @@ def shaft_lines(amp, df_hz, shaft_hz, max_order=10):
 def _explaining_lines(evidence, shaft_hz, skip):
     """Lines that another defect with a standing fundamental accounts for.
 
-    Each is ``(freq_hz, expected_hz or None)``: the defect's own standing
-    harmonics (with where that defect expects them), and the sidebands its
-    modulation puts beside them (±1x and ±2x for the races, ±FTF and ±2 FTF
-    for the rolling element), which belong to nobody else.  A race or
+    Each is ``(freq_hz, expected_hz or None, carrier or None)``: the defect's
+    own standing harmonics (with where that defect expects them), and the
+    sidebands its modulation puts beside them (±1x and ±2x for the races,
+    ±FTF and ±2 FTF for the rolling element, with the amplitude of the line
+    they flank), which belong to nobody else -- as long as they are not
+    stronger than that line: an amplitude-modulated line's sidebands never
+    are.  A race or
     rolling-element defect's harmonics beyond those it searched (a point may
     search fewer than the spectrum holds) are included where it would put
     them, as whole multiples of its found rate, up to the highest line of
@@ -217,16 +223,16 @@ def _explaining_lines(evidence, shaft_hz, skip):
             continue
         mods = {"bpfo": (shaft_hz, 2 * shaft_hz), "bpfi": (shaft_hz, 2 * shaft_hz),
                 "bsf": (ftf_hz, 2 * ftf_hz) if ftf_hz else ()}.get(k, ())
-        for h, f, _, s in ev["lines"]:
+        for h, f, a, s in ev["lines"]:
             if s < HARMONIC_SNR_DB:
                 continue
-            out.append((f, h * ev["expected_hz"]))
+            out.append((f, h * ev["expected_hz"], None))
             for m in mods:
-                out += [(f - m, None), (f + m, None)]
+                out += [(f - m, None, a), (f + m, None, a)]
         if k != "ftf" and ev["snr_db"] >= HARMONIC_SNR_DB:
             h = ev["searched"] + 1
             while h * ev["base_hz"] <= top_hz:
-                out.append((h * ev["base_hz"], h * ev["expected_hz"]))
+                out.append((h * ev["base_hz"], h * ev["expected_hz"], None))
                 h += 1
     return out
 
@@ -307,7 +313,7 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
         count, best, fund_amb = 0, 0.0, ev["found_hz"] is None
         on_shaft_only = False  # the fundamental is ambiguous for a shaft harmonic alone
         first_three = []  # SNRs of the first three unambiguous lines, whatever their order
-        for h, f, _, s in ev["lines"]:
+        for h, f, a, s in ev["lines"]:
             k = round(f / shaft_hz)
             amb_shaft = 1 <= k <= max_shaft_order and abs(f - k * shaft_hz) <= shaft_guard
             amb_other = False
@@ -316,8 +322,9 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
                 amb_other = j >= 1 and abs(f - j * cage_hz) <= guard
             mine = abs(f - h * ev["expected_hz"])
             amb_other = amb_other or any(
-                abs(f - fo) <= guard and (expected is None or abs(f - expected) <= mine + tie_hz)
-                for fo, expected in others)
+                abs(f - fo) <= guard and (a <= carrier if expected is None
+                                          else abs(f - expected) <= mine + tie_hz)
+                for fo, expected, carrier in others)
             amb = amb_shaft or amb_other
             if h == 1:
                 if amp is not None and not amb_other:
@@ -396,8 +403,9 @@ def _mark_same_line(evidence, guard, tie_hz):
     are carried through the load zone at the cage rate, so a line without FTF
     sidebands is more likely a race's).  A defect whose fundamental is a
     standing harmonic (2nd or higher) of another race's or rolling element's
-    found rate is marked too, with ``same_line_harmonic``: its lines are that
-    defect's harmonics.
+    found rate, whose own fundamental is not much weaker (``FAMILY_MIN_RATIO``),
+    is marked too, with ``same_line_harmonic``: its lines are that defect's
+    harmonics.
     """
     standing = [k for k, ev in evidence.items()
                 if ev["found_hz"] is not None and ev["snr_db"] >= FUNDAMENTAL_SNR_DB]
@@ -428,8 +436,11 @@ def _mark_same_line(evidence, guard, tie_hz):
             if b in (a, "ftf") or eb.get("same_line_as") or eb["found_hz"] >= ea["found_hz"]:
                 continue
             h = round(ea["found_hz"] / eb["found_hz"])
-            if h >= 2 and any(hb == h and abs(f - ea["found_hz"]) <= guard and s >= HARMONIC_SNR_DB
-                              for hb, f, _, s in eb["lines"]):
+            # a harmonic does not stand far above its own fundamental: a weak
+            # "fundamental" under a strong line is no parent of it
+            if h >= 2 and eb["amplitude"] >= FAMILY_MIN_RATIO * ea["amplitude"] and any(
+                    hb == h and abs(f - ea["found_hz"]) <= guard and s >= HARMONIC_SNR_DB
+                    for hb, f, _, s in eb["lines"]):
                 ea["same_line_as"] = b
                 ea["same_line_harmonic"] = h
                 break

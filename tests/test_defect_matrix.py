@@ -265,6 +265,12 @@ SWEEP_CASES = [
     pytest.param(_bearing(11, 9.76, 61.169, 15.0), 46.654, 44100, {"inner"}, "unbalance",
                  dict(seed=830445, resonance_hz=5000.0, impact_m_s2=3.502),
                  {("bpfi", "none")}, id="2xbsf-peak-on-bpfi-flank"),
+    # 4 s capture, 6 balls: BPFI = 3.97 x lies 1.9 % from 2 x BPFO.  A weak peak in
+    # BPFO's window is BPFI's -2x sideband; the 34 dB BPFI line is neither that
+    # peak's harmonic nor its sideband (a sideband is never stronger than its line)
+    pytest.param(_bearing(6, 17.367, 53.471), 52.8518, 51200, {"inner"}, "gravity",
+                 dict(seed=144989, resonance_hz=3000.0, impact_m_s2=3.976, capture_s=4.0),
+                 {("bpfi", "shaft")}, id="bpfi-not-a-weak-bpfo-harmonic"),
     # 6 balls, BPFI + 1x lies 0.9 Hz from 2 x BPFO: the upper sideband is BPFO's,
     # the lower one still shows the inner race's 1x modulation
     pytest.param(_bearing(6, 6.157, 27.05), 18.99, 25600, {"outer", "inner"}, "both",
