@@ -17,7 +17,7 @@ Rules (all thresholds are module constants, documented here):
   ``SHAFT_COMB_MIN_LINES`` standing lines at orders 3-10 that are not the
   defect's harmonics), and, without such a comb, one within
   ``SHAFT_LINE_BINS`` of a shaft harmonic (too close to tell apart); so is a
-  fundamental that is only a ripple on the flank of another defect's line
+  line that is only a ripple on the flank of another defect's line
   ``FLANK_STRONGER_DB`` stronger (slip broadens strong lines);
 - a defect signature is present when its fundamental stands out by at least
   ``FUNDAMENTAL_SNR_DB`` and at least ``MIN_HARMONICS`` unambiguous harmonics
@@ -298,8 +298,8 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
         :func:`shaft_lines` of the same spectrum.  Without it every low
         shaft harmonic is assumed present (the cautious reading).
     amp : ndarray or list of float, optional
-        The spectrum itself.  With it, a fundamental that lies on the flank
-        of a much stronger line of another defect (:func:`_on_flank`) is
+        The spectrum itself.  With it, a line that lies on the flank of a
+        much stronger line of another defect (:func:`_on_flank`) is
         ambiguous too.
     """
     guard = 2.0 * df_hz
@@ -325,11 +325,10 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
                 abs(f - fo) <= guard and (a <= carrier if expected is None
                                           else abs(f - expected) <= mine + tie_hz)
                 for fo, expected, carrier in others)
+            if amp is not None and not amb_other:
+                amb_other = _on_flank(amp, df_hz, f, a, key, evidence)
             amb = amb_shaft or amb_other
             if h == 1:
-                if amp is not None and not amb_other:
-                    amb_other = _on_flank(amp, df_hz, f, ev["amplitude"], key, evidence)
-                    amb = amb or amb_other
                 fund_amb = amb
                 on_shaft_only = amb_shaft and not amb_other
             if amb:

@@ -265,6 +265,13 @@ SWEEP_CASES = [
     pytest.param(_bearing(11, 9.76, 61.169, 15.0), 46.654, 44100, {"inner"}, "unbalance",
                  dict(seed=830445, resonance_hz=5000.0, impact_m_s2=3.502),
                  {("bpfi", "none")}, id="2xbsf-peak-on-bpfi-flank"),
+    # 4 s capture: 2xBSF (4.96 x) lies 2.6 % above BPFO (4.84 x), with no line of its
+    # own; its 2nd to 4th harmonic windows hold ripples on the flanks of BPFO's
+    # slip-broadened harmonics, which are no rolling-element evidence
+    pytest.param(_bearing(12, 14.33, 73.857), 32.4989, 51200, {"outer"}, "none",
+                 dict(band_hz=(2400, 5600), seed=3233, resonance_hz=4000.0, impact_m_s2=5.309,
+                      capture_s=4.0),
+                 {("bpfo", "none")}, id="2xbsf-harmonics-on-bpfo-flanks"),
     # 4 s capture, 6 balls: BPFI = 3.97 x lies 1.9 % from 2 x BPFO.  A weak peak in
     # BPFO's window is BPFI's -2x sideband; the 34 dB BPFI line is neither that
     # peak's harmonic nor its sideband (a sideband is never stronger than its line)
