@@ -31,6 +31,8 @@ Rules (all thresholds are module constants, documented here):
   race), and its finding's text says that the other rate falls on the same
   line; likewise a defect whose fundamental is a standing harmonic of
   another's found rate;
+- a line is explained as another line's sideband only when it is not the
+  stronger of the two (amplitude modulation never makes a sideband so);
 - a sideband that falls on a standing line of another defect found present,
   and nearer to it than that defect's own harmonic is, belongs to that defect:
   the ratio is then twice the other sideband over the line (the two are equal
@@ -209,11 +211,10 @@ def _explaining_lines(evidence, shaft_hz, skip):
     ±FTF and ±2 FTF for the rolling element, with the amplitude of the line
     they flank), which belong to nobody else -- as long as they are not
     stronger than that line: an amplitude-modulated line's sidebands never
-    are.  A race or
-    rolling-element defect's harmonics beyond those it searched (a point may
-    search fewer than the spectrum holds) are included where it would put
-    them, as whole multiples of its found rate, up to the highest line of
-    ``skip``: a line there is no evidence for ``skip``.
+    are.  A race or rolling-element defect's harmonics beyond those it
+    searched (a point may search fewer than the spectrum holds) are included
+    where it would put them, as whole multiples of its found rate, up to the
+    highest line of ``skip``: a line there is no evidence for ``skip``.
     """
     ftf_hz = evidence["ftf"]["expected_hz"] if "ftf" in evidence else None
     top_hz = max((f for _, f, _, _ in evidence[skip]["lines"]), default=0.0)
@@ -402,9 +403,10 @@ def _mark_same_line(evidence, guard, tie_hz):
     are carried through the load zone at the cage rate, so a line without FTF
     sidebands is more likely a race's).  A defect whose fundamental is a
     standing harmonic (2nd or higher) of another race's or rolling element's
-    found rate, whose own fundamental is not much weaker (``FAMILY_MIN_RATIO``),
-    is marked too, with ``same_line_harmonic``: its lines are that defect's
-    harmonics.
+    found rate is marked too, with ``same_line_harmonic`` (its lines are that
+    defect's harmonics), provided that defect's own fundamental is at least
+    ``FAMILY_MIN_RATIO`` of the line: a harmonic does not stand far above its
+    fundamental.
     """
     standing = [k for k, ev in evidence.items()
                 if ev["found_hz"] is not None and ev["snr_db"] >= FUNDAMENTAL_SNR_DB]
