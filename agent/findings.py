@@ -49,10 +49,10 @@ from __future__ import annotations
 
 import math
 
-from agent.dsp.peaks import _floats, find_peak, noise_floor, sideband_ratio, snr_db
+from agent.dsp.peaks import bin_floats, find_peak, noise_floor, sideband_ratio, snr_db
 
 __all__ = ["DEFECTS", "search_defect", "shaft_lines", "count_harmonics", "judge",
-           "summary_sentence", "modulation_meaning"]
+           "summary_sentence", "modulation_meaning", "same_line_words"]
 
 HARMONIC_SNR_DB = 6.0
 FUNDAMENTAL_SNR_DB = 10.0
@@ -385,7 +385,7 @@ def _on_flank(amp, df_hz, f_hz, amplitude, skip, evidence):
                     or a < amplitude * _FLANK_STRONGER:
                 continue
             j = int(round(f / df_hz))
-            between = _floats(amp, min(j, k) + 1, max(j, k))
+            between = bin_floats(amp, min(j, k) + 1, max(j, k))
             if between and amplitude <= min(between) * _FLANK_DIP:
                 return True
     return False
@@ -554,11 +554,7 @@ def judge(evidence, flagged):
         text = _text(key, ev, modulation, severity)
         for other, oev in evidence.items():
             if oev.get("same_line_as") == key:
-                label, what, _ = DEFECTS[other]
-                h = oev.get("same_line_harmonic")
-                where = f"its {_ordinal(h)} harmonic" if h else "the same line"
-                text += (f" This bearing's {label} ({what.lower()} defect rate) falls on "
-                         f"{where}: the envelope cannot tell the two apart.")
+                text += f" {same_line_words(other, key, oev.get('same_line_harmonic'))}."
         out.append({"defect": key, "severity": severity, "modulation": modulation,
                     "text": text})
     # A cage line explained by a rolling-element signature's sidebands is not a second finding.
@@ -568,8 +564,34 @@ def judge(evidence, flagged):
     return out
 
 
-def _ordinal(n):
-    return {2: "2nd", 3: "3rd"}.get(n, f"{n}th")
+def same_line_words(key, on_key, harmonic=None):
+    """The one wording of a defect set aside for falling on another's line.
+
+    Parameters
+    ----------
+    key : str
+        The defect set aside (its evidence has ``same_line_as == on_key``).
+    on_key : str
+        The defect whose line it falls on.
+    harmonic : int, optional
+        ``same_line_harmonic``: it falls on that harmonic of ``on_key``.
+
+    Returns
+    -------
+    str
+        E.g. "This bearing's 2xBSF (rolling-element defect rate) falls on the
+        BPFO line: the envelope cannot tell the two apart", without a final
+        full stop.
+    """
+    label, what, _ = DEFECTS[key]
+    on_label = DEFECTS[on_key][0]
+    if harmonic:
+        ordinal = {2: "2nd", 3: "3rd"}.get(harmonic, f"{harmonic}th")
+        where = f"the {ordinal} harmonic of {on_label}"
+    else:
+        where = f"the {on_label} line"
+    return (f"This bearing's {label} ({what.lower()} defect rate) falls on {where}: "
+            f"the envelope cannot tell the two apart")
 
 
 def summary_sentence(findings):

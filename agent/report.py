@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import textwrap
 
-from agent.findings import DEFECTS, HARMONIC_SNR_DB
+from agent.findings import DEFECTS, HARMONIC_SNR_DB, same_line_words
 from agent.safety import CAUTION
 
 __all__ = ["CAUTION", "table", "analysis_report", "bearing_report"]
@@ -105,12 +105,9 @@ def analysis_report(d, source=""):
                    f"{HARMONIC_SNR_DB:g} dB above the floor")
         out.append("  (2 x the other sideband / line where one sideband is another defect's line)")
         for key, ev in d["defects"].items():
-            other = ev.get("same_line_as")
-            if other:
-                h = ev.get("same_line_harmonic")
-                where = f"a harmonic ({h}x) of {DEFECTS[other][0]}" if h else f"the {DEFECTS[other][0]} line"
-                out.append(f"  {DEFECTS[key][0]} falls on {where}: not judged on its own "
-                           f"(the envelope cannot tell the two apart)")
+            if ev.get("same_line_as"):
+                out.append(f"  {same_line_words(key, ev['same_line_as'], ev.get('same_line_harmonic'))}"
+                           f"; it is not judged on its own")
         out.append("")
 
     out.append("Findings")

@@ -319,14 +319,15 @@ def test_one_line_is_one_finding_that_names_the_other_rate():
     # the analysis JSON and the report's table say it too
     from agent.report import analysis_report
     assert a.to_dict()["defects"]["bsf"]["same_line_as"] == "bpfo"
-    assert "2xBSF falls on the BPFO line" in analysis_report(a.to_dict(), source="test")
+    assert "2xBSF (rolling-element defect rate) falls on the BPFO line" in analysis_report(
+        a.to_dict(), source="test")
     # BPFI = 9.5536 x lies 0.2 % from twice 2xBSF (4.7863 x): every BPFI line is an
     # even harmonic of 2xBSF.  A damaged rolling element gives one finding, which
     # says that BPFI falls on its 2nd harmonic
     a = run_bearing(_bearing(16, 8.868, 44.108, 15.0), 27.8078, 44100, {"rolling"}, "gravity",
                     seed=478499, resonance_hz=5000.0, impact_m_s2=4.049)
     assert findings(a) == {("bsf", "cage")}
-    assert "BPFI" in a.findings[0]["text"] and "2nd harmonic" in a.findings[0]["text"]
+    assert "BPFI (inner-race defect rate) falls on the 2nd harmonic of 2xBSF" in a.findings[0]["text"]
 
 
 # --------------------------------------------------------------------------- signal quality

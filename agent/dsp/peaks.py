@@ -10,7 +10,7 @@
 
 All functions take an amplitude spectrum ``amp`` on bins ``k * df_hz``, as
 an array or as a list of floats.  They read a few bins at a time and work on
-those as Python floats (:func:`_floats`), several times cheaper than numpy
+those as Python floats (:func:`bin_floats`), several times cheaper than numpy
 calls on a handful of values, without ever copying the whole spectrum.
 """
 
@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import math
 
-__all__ = ["Peak", "find_peak", "noise_floor", "snr_db", "sideband_ratio", "list_median"]
+__all__ = ["Peak", "find_peak", "noise_floor", "snr_db", "sideband_ratio", "list_median", "bin_floats"]
 
 
 class Peak(tuple):
@@ -34,7 +34,7 @@ class Peak(tuple):
     bin = property(lambda self: self[2])
 
 
-def _floats(amp, lo, hi):
+def bin_floats(amp, lo, hi):
     """Bins ``lo:hi`` of ``amp`` as a list of Python floats."""
     part = amp[lo:hi]
     return part if isinstance(part, list) else part.tolist()
@@ -98,7 +98,7 @@ def find_peak(amp, df_hz, target_hz, tol_hz, min_half_bins=1.5):
     if hi - lo < 1 or target_hz <= 0:
         return None
     first = max(lo - 1, 0)
-    window = _floats(amp, first, hi + 1)  # the searched bins and a neighbour each side
+    window = bin_floats(amp, first, hi + 1)  # the searched bins and a neighbour each side
     i0 = lo - first
     i = window.index(max(window[i0:i0 + hi - lo]), i0)  # the first largest bin, as numpy.argmax
     k = first + i
@@ -142,7 +142,7 @@ def noise_floor(amp, df_hz, center_hz, half_width_hz, guard_bins=3):
     c = int(round(center_hz / df_hz))
     hw = max(int(round(half_width_hz / df_hz)), guard_bins + 4)
     lo, hi = max(c - hw, 1), min(c + hw + 1, n)
-    v = _floats(amp, lo, max(c - guard_bins, lo)) + _floats(amp, min(c + guard_bins + 1, hi), hi)
+    v = bin_floats(amp, lo, max(c - guard_bins, lo)) + bin_floats(amp, min(c + guard_bins + 1, hi), hi)
     return list_median(v) if v else math.nan
 
 
