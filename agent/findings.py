@@ -17,8 +17,14 @@ Rules (all thresholds are module constants, documented here):
   ``SHAFT_COMB_MIN_LINES`` standing lines at orders 3-10 that are not the
   defect's harmonics), and, without such a comb, one within
   ``SHAFT_LINE_BINS`` of a shaft harmonic (too close to tell apart); so is a
-  line that is only a ripple on the flank of another defect's line
-  ``FLANK_STRONGER_DB`` stronger (slip broadens strong lines);
+  line that is only a ripple on the flank of another defect's line or
+  sideband ``FLANK_STRONGER_DB`` stronger, with no dip deeper than
+  ``FLANK_DIP_DB`` between them (slip broadens strong lines); when the
+  fundamental is such a ripple, the harmonics are sought again at multiples
+  of the expected rate, not of the ripple;
+- a defect whose own fundamental does not stand out unambiguously has no
+  claim on another defect's standing lines, however near its expected
+  harmonics lie to them;
 - a defect signature is present when its fundamental stands out by at least
   ``FUNDAMENTAL_SNR_DB`` and at least ``MIN_HARMONICS`` unambiguous harmonics
   (the fundamental included) stand out;
@@ -72,11 +78,12 @@ SHAFT_LINE_BINS = 0.5
 #: tie: the line is evidence for neither.
 TIE_BINS = 0.25
 #: A peak within this relative distance of another defect's line that is
-#: FLANK_STRONGER_DB stronger, with no dip deeper than FLANK_DIP_DB between
-#: them, is a ripple on that line's flank.
+#: FLANK_STRONGER_DB stronger (twice its amplitude), with no dip deeper than
+#: FLANK_DIP_DB between them (the valley stays above half the peak), is a
+#: ripple on that line's flank: the two are not resolved.
 FLANK_SPAN = 0.05
-FLANK_STRONGER_DB = 10.0
-FLANK_DIP_DB = 3.0
+FLANK_STRONGER_DB = 6.0
+FLANK_DIP_DB = 6.0
 _FLANK_STRONGER = 10.0 ** (FLANK_STRONGER_DB / 20.0)
 _FLANK_DIP = 10.0 ** (FLANK_DIP_DB / 20.0)
 #: A defect's line is taken for another defect's harmonic only when that
@@ -96,7 +103,8 @@ def _is_local_max(amp, k):
     return 0 < k < len(amp) - 1 and amp[k] >= amp[k - 1] and amp[k] >= amp[k + 1]
 
 
-def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=None):
+def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=None,
+                  follow=True):
     """Evidence of one defect frequency in an envelope amplitude spectrum.
 
     Parameters
@@ -118,6 +126,10 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
     modulation_hz : float, optional
         Sideband spacing to measure around the fundamental, when the
         fundamental stands out by ``HARMONIC_SNR_DB``.
+    follow : bool, default True
+        Seek the harmonics near multiples of the found fundamental once it
+        stands out; False: near multiples of ``expected_hz`` (used when the
+        found peak turns out to be no line of this defect).
 
     Returns
     -------
@@ -134,7 +146,8 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
     out = {"expected_hz": expected_hz, "found_hz": None, "amplitude": 0.0, "snr_db": 0.0,
            "lines": [], "searched": 0, "sideband_ratio": None, "sideband_snr_db": None,
            "modulation_hz": modulation_hz, "harmonics": 0, "peak_snr_db": 0.0,
-           "base_hz": expected_hz, "sidebands": None}
+           "base_hz": expected_hz, "sidebands": None, "tolerance": tolerance,
+           "asked": harmonics}
     base = expected_hz
     for h in range(1, harmonics + 1):
         target = h * base
@@ -148,7 +161,7 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
         s = snr_db(pk.amplitude, noise_floor(amp, df_hz, pk.freq_hz, floor_hw))
         if h == 1:
             out.update(found_hz=pk.freq_hz, amplitude=pk.amplitude, snr_db=s)
-            if s >= HARMONIC_SNR_DB:
+            if s >= HARMONIC_SNR_DB and follow:
                 base = pk.freq_hz
                 out["base_hz"] = base
         out["lines"].append((h, pk.freq_hz, pk.amplitude, s))
@@ -309,11 +322,15 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
     cage_hz = _cage_comb_hz(evidence)
     for key, ev in evidence.items():
         others = _explaining_lines(evidence, shaft_hz, key)
+        sidebands = [fo for fo, _, carrier in others if carrier is not None]
+        if amp is not None:
+            _unfollow_ripple(amp, df_hz, key, evidence, sidebands)
         comb = _shaft_comb(ev, standing_shaft, guard)
         shaft_guard = guard if comb else SHAFT_LINE_BINS * df_hz
         count, best, fund_amb = 0, 0.0, ev["found_hz"] is None
         on_shaft_only = False  # the fundamental is ambiguous for a shaft harmonic alone
         first_three = []  # SNRs of the first three unambiguous lines, whatever their order
+        own_standing = ev["found_hz"] is not None and ev["snr_db"] >= FUNDAMENTAL_SNR_DB
         for h, f, a, s in ev["lines"]:
             k = round(f / shaft_hz)
             amb_shaft = 1 <= k <= max_shaft_order and abs(f - k * shaft_hz) <= shaft_guard
@@ -321,17 +338,21 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
             if cage_hz and key in ("bpfo", "bpfi"):
                 j = round(f / cage_hz)
                 amb_other = j >= 1 and abs(f - j * cage_hz) <= guard
-            mine = abs(f - h * ev["expected_hz"])
+            # nearer expectation wins a shared line only for a defect whose own
+            # fundamental stands: without it, another defect's standing line is
+            # that defect's, however near this one's expected harmonic lies
+            mine = abs(f - h * ev["expected_hz"]) if own_standing else math.inf
             amb_other = amb_other or any(
                 abs(f - fo) <= guard and (a <= carrier if expected is None
                                           else abs(f - expected) <= mine + tie_hz)
                 for fo, expected, carrier in others)
             if amp is not None and not amb_other:
-                amb_other = _on_flank(amp, df_hz, f, a, key, evidence)
+                amb_other = _on_flank(amp, df_hz, f, a, key, evidence, sidebands)
             amb = amb_shaft or amb_other
             if h == 1:
                 fund_amb = amb
                 on_shaft_only = amb_shaft and not amb_other
+                own_standing = own_standing and (not amb or on_shaft_only)
             if amb:
                 continue
             if s >= HARMONIC_SNR_DB:
@@ -370,24 +391,52 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
     return evidence
 
 
-def _on_flank(amp, df_hz, f_hz, amplitude, skip, evidence):
+def _unfollow_ripple(amp, df_hz, key, evidence, sidebands):
+    """When the peak taken for a defect's fundamental is a ripple on another
+    defect's line (:func:`_on_flank`), its harmonics were sought at multiples
+    of that ripple and follow the other line's flanks up the spectrum: seek
+    them again at multiples of the expected rate."""
+    ev = evidence[key]
+    if ev["base_hz"] == ev["expected_hz"] or not ev["lines"] or ev["lines"][0][0] != 1:
+        return
+    _, f, a, _ = ev["lines"][0]
+    if not _on_flank(amp, df_hz, f, a, key, evidence, sidebands):
+        return
+    again = search_defect(amp, df_hz, ev["expected_hz"], ev["asked"], ev["tolerance"],
+                          follow=False)
+    ev["lines"] = ev["lines"][:1] + [line for line in again["lines"] if line[0] >= 2]
+    ev["base_hz"] = ev["expected_hz"]
+
+
+def _on_flank(amp, df_hz, f_hz, amplitude, skip, evidence, sidebands=()):
     """True when a peak at ``f_hz`` is a ripple on the flank of a line of
-    another defect: a standing line within ``FLANK_SPAN`` of it (relative),
-    ``FLANK_STRONGER_DB`` stronger, with no dip of more than ``FLANK_DIP_DB``
-    between the two.  Slip makes a strong line broad, and its flank carries
-    local maxima that stand over the median floor further out."""
+    another defect: a standing line, or the strongest bin within two bins of
+    one of its sidebands (``sidebands``: positions in Hz), within
+    ``FLANK_SPAN`` of it (relative), ``FLANK_STRONGER_DB`` stronger, with no
+    dip of more than ``FLANK_DIP_DB`` between the two.  Slip makes a strong
+    line broad, and its flank carries local maxima that stand over the median
+    floor further out; two peaks without such a dip between them are not
+    resolved, and the stronger one is the line."""
     k = int(round(f_hz / df_hz))
+    near = []  # (bin, amplitude) of the other defects' lines within reach
     for key, ev in evidence.items():
         if key == skip or ev.get("same_line_as"):
             continue
-        for _, f, a, s in ev["lines"]:
-            if s < FUNDAMENTAL_SNR_DB or abs(f - f_hz) > FLANK_SPAN * f_hz \
-                    or a < amplitude * _FLANK_STRONGER:
-                continue
+        near += [(int(round(f / df_hz)), a) for _, f, a, s in ev["lines"]
+                 if s >= FUNDAMENTAL_SNR_DB and abs(f - f_hz) <= FLANK_SPAN * f_hz]
+    for f in sidebands:
+        if abs(f - f_hz) <= FLANK_SPAN * f_hz:
             j = int(round(f / df_hz))
-            between = bin_floats(amp, min(j, k) + 1, max(j, k))
-            if between and amplitude <= min(between) * _FLANK_DIP:
-                return True
+            vals = bin_floats(amp, max(j - 2, 0), j + 3)
+            if vals:
+                a = max(vals)
+                near.append((max(j - 2, 0) + vals.index(a), a))
+    for j, a in near:
+        if j == k or a < amplitude * _FLANK_STRONGER:
+            continue
+        between = bin_floats(amp, min(j, k) + 1, max(j, k))
+        if between and amplitude <= min(between) * _FLANK_DIP:
+            return True
     return False
 
 

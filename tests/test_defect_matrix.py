@@ -278,6 +278,19 @@ SWEEP_CASES = [
     pytest.param(_bearing(6, 17.367, 53.471), 52.8518, 51200, {"inner"}, "gravity",
                  dict(seed=144989, resonance_hz=3000.0, impact_m_s2=3.976, capture_s=4.0),
                  {("bpfi", "shaft")}, id="bpfi-not-a-weak-bpfo-harmonic"),
+    # 4 s capture, 14 balls: BPFI (9.26 x) lies 2.5 % below 2 x BPFO.  The peak in
+    # BPFI's window is a ripple on the flank of BPFO's slip-broadened 2nd harmonic
+    # (8 dB weaker, a 3.5 dB dip between), and so on up BPFO's even harmonics
+    pytest.param(_bearing(14, 20.053, 62.293), 43.4407, 48000, {"outer"}, "unbalance",
+                 dict(seed=527315, resonance_hz=4000.0, impact_m_s2=2.582, capture_s=4.0),
+                 {("bpfo", "shaft")}, id="bpfi-ripples-on-even-bpfo-harmonics"),
+    # 4 s capture, 13 balls, no line at BPFI (7.58 x): its 5th harmonic is BPFO's
+    # 7th (0.5 Hz apart, nearer BPFI's expected position), its 2nd a ripple on the
+    # flank of BPFO's 3rd harmonic's lower 1x sideband; neither is inner-race evidence
+    pytest.param(_bearing(13, 6.437, 38.66), 40.6677, 25600, {"outer"}, "unbalance",
+                 dict(band_hz=(1800, 4200), seed=946967, resonance_hz=3000.0, impact_m_s2=4.608,
+                      capture_s=4.0),
+                 {("bpfo", "shaft")}, id="bpfi-harmonics-on-bpfo-lines-and-sidebands"),
     # 6 balls, BPFI + 1x lies 0.9 Hz from 2 x BPFO: the upper sideband is BPFO's,
     # the lower one still shows the inner race's 1x modulation
     pytest.param(_bearing(6, 6.157, 27.05), 18.99, 25600, {"outer", "inner"}, "both",

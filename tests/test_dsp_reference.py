@@ -527,6 +527,44 @@ def test_a_ripple_on_a_strong_lines_flank_is_not_a_defect_line():
         assert ev["bpfi"]["fundamental_ambiguous"] is (not present)
 
 
+def test_a_ripple_on_a_sidebands_flank_is_not_a_defect_line():
+    # Randall & Antoni 2011, sec. 2.1 and 2.2: a slip-broadened outer-race line
+    # under a rotating load carries 1x sidebands that are as broad as their line;
+    # a ripple on a sideband's flank, 2.5 Hz from it (beyond the two bins within
+    # which it would be the sideband itself), is no line of another defect
+    from agent.findings import count_harmonics, search_defect
+    df, f0, shaft = 0.5, 100.0, 10.0
+    bins = np.arange(4000) * df
+    amp = 1e-3 + sum(a / h / (1.0 + ((bins - f) / 0.8) ** 2)
+                     for h in range(1, 9)
+                     for f, a in ((h * f0, 0.5), (h * f0 - shaft, 0.2), (h * f0 + shaft, 0.2)))
+    k = int(87.5 / df)
+    amp[k] *= 2.5
+    assert amp[k] > amp[k - 1] and amp[k] > amp[k + 1]   # a local maximum
+    ev = {"bpfo": search_defect(amp, df, f0, 8, 0.02, modulation_hz=shaft),
+          "bpfi": search_defect(amp, df, 86.5, 1, 0.02, modulation_hz=shaft)}
+    count_harmonics(ev, shaft, df, standing_shaft=[], amp=amp)
+    assert ev["bpfi"]["found_hz"] == pytest.approx(87.5, abs=df / 2)
+    assert ev["bpfi"]["snr_db"] > 10.0  # over the median floor it looks like a line
+    assert ev["bpfi"]["fundamental_ambiguous"]
+
+
+def test_a_rate_without_its_own_line_cannot_claim_another_defects_harmonics():
+    # from memory (harmonic arithmetic): when BPFI is 1.5 x BPFO, every 2nd BPFI
+    # harmonic is a 3rd BPFO harmonic.  With a standing outer-race family and no
+    # line at BPFI itself, the shared lines are the outer race's, even where the
+    # geometry puts BPFI's harmonic a little nearer to them than BPFO's.
+    from agent.findings import count_harmonics, judge, search_defect
+    df = 0.5
+    amp = _comb_spectrum(df, [(h * 100.0, 0.1 / h) for h in range(1, 17)])
+    ev = {"bpfo": search_defect(amp, df, 100.1, 8, 0.02),
+          "bpfi": search_defect(amp, df, 150.0, 8, 0.02)}
+    count_harmonics(ev, 37.0, df, standing_shaft=[], amp=amp)
+    assert ev["bpfi"]["snr_db"] < 6.0                  # no BPFI line of its own
+    assert ev["bpfi"]["harmonics"] == 0
+    assert {f["defect"] for f in judge(ev, flagged=False)} == {"bpfo"}
+
+
 def test_a_defect_line_on_a_shaft_harmonic_cannot_be_told_from_it():
     # from memory: lines closer than about half a bin cannot be separated in a
     # Hann-windowed spectrum.  BPFO = 3.001 x shaft sits on 3x: without other
