@@ -299,6 +299,10 @@ class Pipeline:
         self._env_w = self._env_wbuf[:ENVELOPE_SEGMENTS // 2 * m].reshape(ENVELOPE_SEGMENTS // 2, m)
         self._taper_head = self._taper_heads[m]
         self._taper_sum = float(self._taper_head[0].real)
+        # the squared envelope of a band B Hz wide holds nothing above B: a
+        # configured band narrower than the harmonics sought leaves the top of
+        # the envelope spectrum empty, where ratios of rounding noise are no SNR
+        self._env_usable = min(self.env_bins, hi_bin - lo_bin + 1)
 
     # ------------------------------------------------------------------ streaming
     def start(self):
@@ -499,7 +503,7 @@ class Pipeline:
             if self._env_segments:
                 amp = envelope_amplitude(self._env_acc, self._env_segments, self._taper_sum,
                                          self._env_amp)
-                defects = self._defects(amp, shaft_hz)
+                defects = self._defects(amp[:self._env_usable], shaft_hz)
                 spectrum = (self._env_freqs, amp.copy())  # the result outlives this capture
         findings = judge(defects, flagged=bool(flags)) if defects else []
         return Analysis(
