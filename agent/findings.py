@@ -9,7 +9,8 @@
 Rules (all thresholds are module constants, documented here):
 
 - a harmonic *stands out* when it is at least ``HARMONIC_SNR_DB`` above the
-  median of its neighbourhood;
+  median of its neighbourhood, leaving out the places of its own 1x and 2x
+  sidebands (:func:`agent.dsp.peaks.noise_floor`);
 - a harmonic whose search window also holds another defect's harmonic or
   sideband is *ambiguous* and never counted as evidence; so is one within two
   bins of a low shaft harmonic (orders up to 10) when the envelope spectrum
@@ -158,7 +159,8 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
         pk = find_peak(amp, df_hz, target, tol_hz)
         if pk is None or not _is_local_max(amp, pk.bin):
             continue
-        s = snr_db(pk.amplitude, noise_floor(amp, df_hz, pk.freq_hz, floor_hw))
+        s = snr_db(pk.amplitude, noise_floor(amp, df_hz, pk.freq_hz, floor_hw,
+                                             exclude_hz=_sideband_places(pk.freq_hz, modulation_hz)))
         if h == 1:
             out.update(found_hz=pk.freq_hz, amplitude=pk.amplitude, snr_db=s)
             if s >= HARMONIC_SNR_DB and follow:
@@ -170,12 +172,22 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
         ratio, lower, upper = sideband_ratio(amp, df_hz, fc, modulation_hz,
                                              0.25 * tolerance * fc + 1.5 * df_hz)
         if math.isfinite(ratio):
-            floor = noise_floor(amp, df_hz, fc, floor_hw)
+            floor = noise_floor(amp, df_hz, fc, floor_hw,
+                                exclude_hz=_sideband_places(fc, modulation_hz))
             out["sideband_ratio"] = ratio
             out["sideband_snr_db"] = snr_db(max(lower, upper), floor)
             carrier = (lower + upper) / ratio if ratio > 0 else out["amplitude"]
             out["sidebands"] = (lower, upper, carrier, floor)
     return out
+
+
+def _sideband_places(f_hz, modulation_hz):
+    """Where a line's first and second sidebands would be (none without a
+    modulating frequency)."""
+    if not modulation_hz:
+        return ()
+    m = modulation_hz
+    return (f_hz - 2.0 * m, f_hz - m, f_hz + m, f_hz + 2.0 * m)
 
 
 def shaft_lines(amp, df_hz, shaft_hz, max_order=10):

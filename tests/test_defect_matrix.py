@@ -291,6 +291,13 @@ SWEEP_CASES = [
                  dict(band_hz=(1800, 4200), seed=946967, resonance_hz=3000.0, impact_m_s2=4.608,
                       capture_s=4.0),
                  {("bpfo", "shaft")}, id="bpfi-harmonics-on-bpfo-lines-and-sidebands"),
+    # 2 s capture (1.56 Hz bins), shaft 10.65 Hz: BPFO's 1x sidebands lie 7 bins
+    # from it and, slip-broadened, fill most of its floor's neighbourhood; measured
+    # beside them, the sidebands stand out and the unbalance shows
+    pytest.param(_bearing(9, 11.648, 52.202), 10.6541, 51200, {"outer"}, "unbalance",
+                 dict(band_hz=(1800, 4200), seed=802372, resonance_hz=3000.0, impact_m_s2=5.33,
+                      capture_s=2.0),
+                 {("bpfo", "shaft")}, id="bpfo-sidebands-at-coarse-resolution"),
     # 6 balls, BPFI + 1x lies 0.9 Hz from 2 x BPFO: the upper sideband is BPFO's,
     # the lower one still shows the inner race's 1x modulation
     pytest.param(_bearing(6, 6.157, 27.05), 18.99, 25600, {"outer", "inner"}, "both",
@@ -306,6 +313,20 @@ def test_coincidence_found_by_the_sweep(geometry, shaft_hz, fs, faults, modulati
     a = run_bearing(geometry, shaft_hz, fs, faults, modulation, **options)
     assert a.quality == ()
     assert findings(a) == expected
+
+
+def test_no_harmonic_is_sought_above_a_configured_bands_width():
+    # from memory: the squared envelope of a band B Hz wide holds only the
+    # differences of frequencies inside the band, none above B; a configured band
+    # narrower than the harmonics sought leaves the rest of the envelope spectrum
+    # empty, where a ratio of rounding noise would pass for an SNR.
+    # BPFI of the rig bearing (5.4152 x, from memory) at 40 Hz: 216.6 Hz, so a
+    # 1 kHz band holds 4 of its harmonics
+    a = run_bearing(GEOMETRIES["rig9"], 40.0, 25600, {"outer"}, "unbalance",
+                    band_hz=(2000, 3000))
+    assert a.defects["bpfi"]["expected_hz"] == pytest.approx(216.6, abs=0.1)
+    assert a.defects["bpfi"]["searched"] == 4
+    assert {f["defect"] for f in a.findings} == {"bpfo"}
 
 
 def test_automatic_band_reaches_a_low_resonance_on_a_fast_shaft():

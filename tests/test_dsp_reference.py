@@ -747,6 +747,47 @@ def test_noise_floor_is_the_numpy_median_of_the_neighbourhood():
         assert noise_floor(amp.tolist(), 1.0, center_hz, half_hz) == ref
 
 
+def test_noise_floor_leaves_out_the_sideband_places():
+    # reference library: numpy.median over the bins left once the centre and each
+    # excluded place (+-3 bins) are taken out; the neighbourhood doubles until
+    # 12 bins are left (the definition in agent/dsp/peaks.py)
+    from agent.dsp.peaks import noise_floor
+    rng = np.random.default_rng(22)
+    amp = rng.random(400)
+    for _ in range(200):
+        center_hz, half_hz = rng.uniform(60.0, 340.0), rng.uniform(1.0, 30.0)
+        m = rng.uniform(3.0, 15.0)
+        places = (center_hz - 2 * m, center_hz - m, center_hz + m, center_hz + 2 * m)
+        c = int(round(center_hz))
+        out = [c] + [int(round(p)) for p in places]
+        hw = max(int(round(half_hz)), 7)
+        for _ in range(4):
+            idx = [j for j in range(max(c - hw, 1), min(c + hw + 1, amp.size))
+                   if all(abs(j - e) > 3 for e in out)]
+            if len(idx) >= 12:
+                break
+            hw *= 2
+        assert noise_floor(amp, 1.0, center_hz, half_hz, exclude_hz=places) == np.median(amp[idx])
+
+
+def test_sidebands_at_a_coarse_resolution_are_not_taken_for_the_floor():
+    # from memory (trigonometry): amplitude modulation of depth m puts sidebands of
+    # m/2 of the line at +-fm, so the ratio (lower + upper) / line is m.  A line at
+    # 37.5 Hz modulated at 10.6 Hz, seen with 1.56 Hz bins (a 2 s capture at
+    # 51.2 kHz), its lines slip-broadened (2 Hz half-width): the sidebands fill
+    # most of the line's neighbourhood, and the floor must be measured beside them.
+    from agent.findings import search_defect
+    df, fc, fm, m = 1.5625, 37.5, 10.6, 0.8
+    bins = np.arange(2000) * df
+    amp = 1e-3 + sum(a / h / (1.0 + ((bins - f) / 2.0) ** 2)
+                     for h in range(1, 9)
+                     for f, a in ((h * fc, 0.5), (h * fc - fm, 0.5 * m / 2), (h * fc + fm, 0.5 * m / 2)))
+    ev = search_defect(amp, df, fc, 8, 0.02, modulation_hz=fm)
+    assert ev["sideband_ratio"] == pytest.approx(m, rel=0.25)
+    assert ev["sideband_snr_db"] >= 6.0
+    assert ev["snr_db"] >= 10.0
+
+
 def test_list_median_is_the_numpy_median():
     # reference library: numpy.median (odd and even counts, one value, ties)
     from agent.dsp.peaks import list_median

@@ -116,7 +116,8 @@ def find_peak(amp, df_hz, target_hz, tol_hz, min_half_bins=1.5):
     return Peak(freq_hz, b, k)
 
 
-def noise_floor(amp, df_hz, center_hz, half_width_hz, guard_bins=3):
+def noise_floor(amp, df_hz, center_hz, half_width_hz, guard_bins=3, exclude_hz=(),
+                min_bins=12):
     """Median amplitude around a frequency, leaving out the centre.
 
     Parameters
@@ -131,6 +132,15 @@ def noise_floor(amp, df_hz, center_hz, half_width_hz, guard_bins=3):
         Half-width of the neighbourhood used.
     guard_bins : int, default 3
         Bins either side of the centre left out (the peak's main lobe).
+    exclude_hz : sequence of float, optional
+        Other frequencies whose bins (``guard_bins`` either side) are left
+        out too: where the peak's own sidebands are expected.  Near a line at
+        a low frequency, seen at a coarse resolution, they would otherwise
+        fill most of the neighbourhood and the median would be theirs, not
+        the floor's.
+    min_bins : int, default 12
+        With ``exclude_hz``: the neighbourhood is widened (doubled, at most
+        three times) until at least this many bins are left.
 
     Returns
     -------
@@ -141,8 +151,21 @@ def noise_floor(amp, df_hz, center_hz, half_width_hz, guard_bins=3):
     n = len(amp)
     c = int(round(center_hz / df_hz))
     hw = max(int(round(half_width_hz / df_hz)), guard_bins + 4)
-    lo, hi = max(c - hw, 1), min(c + hw + 1, n)
-    v = bin_floats(amp, lo, max(c - guard_bins, lo)) + bin_floats(amp, min(c + guard_bins + 1, hi), hi)
+    if not exclude_hz:
+        lo, hi = max(c - hw, 1), min(c + hw + 1, n)
+        v = bin_floats(amp, lo, max(c - guard_bins, lo)) + bin_floats(amp, min(c + guard_bins + 1, hi), hi)
+        return list_median(v) if v else math.nan
+    out = [(c - guard_bins, c + guard_bins)]
+    for f in exclude_hz:
+        e = int(round(f / df_hz))
+        out.append((e - guard_bins, e + guard_bins))
+    for _ in range(4):
+        lo, hi = max(c - hw, 1), min(c + hw + 1, n)
+        part = bin_floats(amp, lo, hi)
+        v = [x for j, x in enumerate(part, lo) if not any(a <= j <= b for a, b in out)]
+        if len(v) >= min_bins or (lo == 1 and hi == n):
+            break
+        hw *= 2
     return list_median(v) if v else math.nan
 
 
