@@ -33,11 +33,11 @@ Rules (all thresholds are module constants, documented here):
   (``HARMONIC_SNR_DB``): beside a line lost in the floor it would be a ratio
   of noise to noise, often well above 1, and is reported as ``None``;
 - two defects whose standing fundamentals are one line are not both judged:
-  the one whose expected rate is nearer to the line is (on a tie within
-  ``TIE_BINS``, the one whose own modulation shows in the sidebands, else the
-  race), and its finding's text says that the other rate falls on the same
-  line; likewise a defect whose fundamental is a standing harmonic of
-  another's found rate;
+  the one whose own modulation shows in the sidebands is (when that does not
+  decide, the one whose expected rate is nearer to the line; on a tie within
+  ``TIE_BINS``, the race), and its finding's text says that the other rate
+  falls on the same line; likewise a defect whose fundamental is a
+  standing harmonic of another's found rate;
 - a line is explained as another line's sideband only when it is not the
   stronger of the two (amplitude modulation never makes a sideband so);
 - a sideband that falls on a standing line of another defect found present,
@@ -457,12 +457,15 @@ def _mark_same_line(evidence, guard, tie_hz):
     by their lines: one of them gets ``same_line_as`` (the other's key) and is
     neither judged nor used to explain lines.
 
-    It is the one whose expected rate lies farther from the line.  When both
-    lie equally near (within ``tie_hz``), it is the one whose own modulation
-    does not show in the sidebands (a race's at 1x, a rolling element's at
-    FTF); when that does not decide either, the rolling element (its impacts
-    are carried through the load zone at the cage rate, so a line without FTF
-    sidebands is more likely a race's).  A defect whose fundamental is a
+    It is the one whose own modulation does not show in the sidebands while
+    the other's does (a race's at 1x, a rolling element's at FTF): the
+    sidebands are the physics of the fault, while which expected rate lies a
+    fraction of a percent nearer to the line says little when slip moves real
+    rates by 1-2 %.  When the sidebands do not decide, it is the one whose
+    expected rate lies farther from the line; when both lie equally near
+    (within ``tie_hz``), the rolling element (its impacts are carried through
+    the load zone at the cage rate, so a line without FTF sidebands is more
+    likely a race's).  A defect whose fundamental is a
     standing harmonic (2nd or higher) of another race's or rolling element's
     found rate is marked too, with ``same_line_harmonic`` (its lines are that
     defect's harmonics), provided that defect's own fundamental is at least
@@ -479,12 +482,11 @@ def _mark_same_line(evidence, guard, tie_hz):
                 continue
             da = abs(ea["found_hz"] - ea["expected_hz"])
             db = abs(eb["found_hz"] - eb["expected_hz"])
-            if abs(da - db) <= tie_hz:
-                ma, mb = _modulated(ea), _modulated(eb)
-                if ma != mb:
-                    lose = not ma
-                else:
-                    lose = a == "bsf" or (b != "bsf" and da > db)
+            ma, mb = _modulated(ea), _modulated(eb)
+            if ma != mb:
+                lose = not ma
+            elif abs(da - db) <= tie_hz:
+                lose = a == "bsf" or (b != "bsf" and da > db)
             else:
                 lose = da > db
             if lose:

@@ -291,6 +291,12 @@ SWEEP_CASES = [
                  dict(band_hz=(1800, 4200), seed=946967, resonance_hz=3000.0, impact_m_s2=4.608,
                       capture_s=4.0),
                  {("bpfo", "shaft")}, id="bpfi-harmonics-on-bpfo-lines-and-sidebands"),
+    # 4 s capture: BPFI (6.168 x) and 2xBSF (6.186 x) are one line, 2xBSF 0.2 Hz
+    # nearer to it; the line's 1x sidebands (ratio 0.79, none at FTF) are an inner
+    # race's in its load zone, and slip makes a 0.1 % difference in nearness moot
+    pytest.param(_bearing(11, 8.234, 51.724, 40.0), 40.5441, 25600, {"inner"}, "gravity",
+                 dict(seed=517872, resonance_hz=4000.0, impact_m_s2=5.777, capture_s=4.0),
+                 {("bpfi", "shaft")}, id="bpfi-2xbsf-one-line-1x-nearer-2xbsf"),
     # 2 s capture (1.56 Hz bins), shaft 10.65 Hz: BPFO's 1x sidebands lie 7 bins
     # from it and, slip-broadened, fill most of its floor's neighbourhood; measured
     # beside them, the sidebands stand out and the unbalance shows
