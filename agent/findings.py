@@ -21,8 +21,9 @@ Rules (all thresholds are module constants, documented here):
   line that is only a ripple on the flank of another defect's line or
   sideband ``FLANK_STRONGER_DB`` stronger, with no dip deeper than
   ``FLANK_DIP_DB`` between them (slip broadens strong lines); when the
-  fundamental is such a ripple, the harmonics are sought again at multiples
-  of the expected rate, not of the ripple;
+  peak found for the fundamental belongs to another defect (its line, a
+  sideband, such a ripple), the harmonics are sought again at multiples of
+  the expected rate, not of that peak;
 - a defect whose own fundamental does not stand out unambiguously has no
   claim on another defect's standing lines, however near its expected
   harmonics lie to them;
@@ -335,31 +336,37 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
     for key, ev in evidence.items():
         others = _explaining_lines(evidence, shaft_hz, key)
         sidebands = [fo for fo, _, carrier in others if carrier is not None]
-        if amp is not None:
-            _unfollow_ripple(amp, df_hz, key, evidence, sidebands)
+
+        def claimed(h, f, a, own_standing):
+            """True when another defect accounts for the line (its line, sideband,
+            flank or cage comb)."""
+            if cage_hz and key in ("bpfo", "bpfi"):
+                j = round(f / cage_hz)
+                if j >= 1 and abs(f - j * cage_hz) <= guard:
+                    return True
+            # nearer expectation wins a shared line only for a defect whose own
+            # fundamental stands: without it, another defect's standing line is
+            # that defect's, however near this one's expected harmonic lies
+            mine = abs(f - h * ev["expected_hz"]) if own_standing else math.inf
+            if any(abs(f - fo) <= guard and (a <= carrier if expected is None
+                                             else abs(f - expected) <= mine + tie_hz)
+                   for fo, expected, carrier in others):
+                return True
+            return amp is not None and _on_flank(amp, df_hz, f, a, key, evidence, sidebands)
+
+        own_standing = ev["found_hz"] is not None and ev["snr_db"] >= FUNDAMENTAL_SNR_DB
+        if amp is not None and ev["base_hz"] != ev["expected_hz"] and ev["lines"] \
+                and ev["lines"][0][0] == 1 and claimed(1, *ev["lines"][0][1:3], own_standing):
+            _seek_at_expected(amp, df_hz, ev)
         comb = _shaft_comb(ev, standing_shaft, guard)
         shaft_guard = guard if comb else SHAFT_LINE_BINS * df_hz
         count, best, fund_amb = 0, 0.0, ev["found_hz"] is None
         on_shaft_only = False  # the fundamental is ambiguous for a shaft harmonic alone
         first_three = []  # SNRs of the first three unambiguous lines, whatever their order
-        own_standing = ev["found_hz"] is not None and ev["snr_db"] >= FUNDAMENTAL_SNR_DB
         for h, f, a, s in ev["lines"]:
             k = round(f / shaft_hz)
             amb_shaft = 1 <= k <= max_shaft_order and abs(f - k * shaft_hz) <= shaft_guard
-            amb_other = False
-            if cage_hz and key in ("bpfo", "bpfi"):
-                j = round(f / cage_hz)
-                amb_other = j >= 1 and abs(f - j * cage_hz) <= guard
-            # nearer expectation wins a shared line only for a defect whose own
-            # fundamental stands: without it, another defect's standing line is
-            # that defect's, however near this one's expected harmonic lies
-            mine = abs(f - h * ev["expected_hz"]) if own_standing else math.inf
-            amb_other = amb_other or any(
-                abs(f - fo) <= guard and (a <= carrier if expected is None
-                                          else abs(f - expected) <= mine + tie_hz)
-                for fo, expected, carrier in others)
-            if amp is not None and not amb_other:
-                amb_other = _on_flank(amp, df_hz, f, a, key, evidence, sidebands)
+            amb_other = claimed(h, f, a, own_standing)
             amb = amb_shaft or amb_other
             if h == 1:
                 fund_amb = amb
@@ -403,17 +410,12 @@ def count_harmonics(evidence, shaft_hz, df_hz, max_shaft_order=10, standing_shaf
     return evidence
 
 
-def _unfollow_ripple(amp, df_hz, key, evidence, sidebands):
-    """When the peak taken for a defect's fundamental is a ripple on another
-    defect's line (:func:`_on_flank`), its harmonics were sought at multiples
-    of that ripple and follow the other line's flanks up the spectrum: seek
-    them again at multiples of the expected rate."""
-    ev = evidence[key]
-    if ev["base_hz"] == ev["expected_hz"] or not ev["lines"] or ev["lines"][0][0] != 1:
-        return
-    _, f, a, _ = ev["lines"][0]
-    if not _on_flank(amp, df_hz, f, a, key, evidence, sidebands):
-        return
+def _seek_at_expected(amp, df_hz, ev):
+    """The peak taken for a defect's fundamental belongs to another defect (its
+    line, a sideband, a ripple on its flank): the harmonics, sought at
+    multiples of that peak, would follow the other defect's lattice of lines
+    and sidebands up the spectrum.  Seek them again at multiples of the
+    expected rate."""
     again = search_defect(amp, df_hz, ev["expected_hz"], ev["asked"], ev["tolerance"],
                           follow=False)
     ev["lines"] = ev["lines"][:1] + [line for line in again["lines"] if line[0] >= 2]

@@ -297,6 +297,12 @@ SWEEP_CASES = [
     pytest.param(_bearing(11, 8.234, 51.724, 40.0), 40.5441, 25600, {"inner"}, "gravity",
                  dict(seed=517872, resonance_hz=4000.0, impact_m_s2=5.777, capture_s=4.0),
                  {("bpfi", "shaft")}, id="bpfi-2xbsf-one-line-1x-nearer-2xbsf"),
+    # 4 s capture: 2xBSF (4.11 x) lies on BPFO's upper 1x sideband (3.08 x + 1x);
+    # its harmonics sought at multiples of that sideband would be BPFO's lattice
+    # (2 BPFO + 2x, 3 BPFO + 3x), so they are sought where 2xBSF puts them
+    pytest.param(_bearing(8, 9.284, 40.325), 59.6447, 44100, {"outer"}, "unbalance",
+                 dict(seed=73266, resonance_hz=3000.0, impact_m_s2=3.859, capture_s=4.0),
+                 {("bpfo", "shaft")}, id="2xbsf-on-bpfo-sideband-lattice"),
     # 2 s capture (1.56 Hz bins), shaft 10.65 Hz: BPFO's 1x sidebands lie 7 bins
     # from it and, slip-broadened, fill most of its floor's neighbourhood; measured
     # beside them, the sidebands stand out and the unbalance shows
