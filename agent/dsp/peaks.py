@@ -155,14 +155,17 @@ def noise_floor(amp, df_hz, center_hz, half_width_hz, guard_bins=3, exclude_hz=(
         lo, hi = max(c - hw, 1), min(c + hw + 1, n)
         v = bin_floats(amp, lo, max(c - guard_bins, lo)) + bin_floats(amp, min(c + guard_bins + 1, hi), hi)
         return list_median(v) if v else math.nan
-    out = [(c - guard_bins, c + guard_bins)]
-    for f in exclude_hz:
-        e = int(round(f / df_hz))
-        out.append((e - guard_bins, e + guard_bins))
+    out = sorted([c] + [int(round(f / df_hz)) for f in exclude_hz])
     for _ in range(4):
         lo, hi = max(c - hw, 1), min(c + hw + 1, n)
         part = bin_floats(amp, lo, hi)
-        v = [x for j, x in enumerate(part, lo) if not any(a <= j <= b for a, b in out)]
+        v, at = [], lo  # the bins between the left-out stretches, in slices
+        for e in out:
+            if e - guard_bins > at:
+                v += part[at - lo:min(e - guard_bins, hi) - lo]
+            at = max(at, e + guard_bins + 1)
+        if at < hi:
+            v += part[at - lo:]
         if len(v) >= min_bins or (lo == 1 and hi == n):
             break
         hw *= 2
