@@ -615,6 +615,9 @@ def check_point(point, captured):
                         f"{nominal:g} Hz is not checked")
     if zone in ("C", "D"):
         warnings.append(f"velocity in ISO zone {zone}: have the machine assessed")
+    narrow = _band_too_narrow(point, analysis)
+    if narrow:
+        warnings.append(narrow)
     if analysis.findings:
         names = ", ".join(f"{f['defect']} ({f['severity']})" for f in analysis.findings)
         warnings.append(f"bearing defect signature already present: {names}")
@@ -622,6 +625,25 @@ def check_point(point, captured):
     if warnings:
         return WARN, detail + "; " + "; ".join(warnings)
     return PASS, detail
+
+
+def _band_too_narrow(point, analysis):
+    """A warning when a configured demodulation band is narrower than the
+    harmonics sought: the squared envelope of a band B Hz wide holds nothing
+    above B, so the higher harmonics are never searched.  None otherwise."""
+    band = analysis.envelope.get("band_hz")
+    if analysis.envelope.get("band_source") != "config" or not band:
+        return None
+    asked = point.envelope.harmonics
+    short = [(label, ev["searched"]) for key, label in (("bpfo", "BPFO"), ("bpfi", "BPFI"),
+                                                         ("bsf", "2xBSF"))
+             if (ev := analysis.defects.get(key)) and ev["searched"] < asked]
+    if not short:
+        return None
+    which = ", ".join(f"{n} of {asked} {label}" for label, n in short)
+    return (f"envelope.band_hz {band[0]:g}-{band[1]:g} Hz is {band[1] - band[0]:g} Hz wide and the "
+            f"envelope spectrum reaches no higher, so only {which} harmonics are searched: "
+            f"widen the band, or lower envelope.harmonics")
 
 
 def _simulated_analysis(point, fs, fault, modulation, seconds, seed):

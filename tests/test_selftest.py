@@ -176,6 +176,32 @@ def test_delivery_disabled_warns(tmp_path):
         "WARN", "delivery disabled (broker.enabled = false): nothing is sent anywhere")
 
 
+def test_a_configured_band_too_narrow_for_the_harmonics_warns(tmp_path):
+    # from memory: the squared envelope of a band B Hz wide holds nothing above B.
+    # BPFI of this 8-ball bearing at 24.75 Hz is 4.94 x 24.75 = 122 Hz (from
+    # memory, the geometric formula); a 400 Hz band holds 3 of its 8 harmonics.
+    points = textwrap.dedent("""
+        [[point]]
+        name = "raw-water-pump-2-de"
+        channel = 0
+        [point.machine]
+        shaft_hz = 24.75
+        [point.bearing]
+        balls = 8
+        ball_diameter_mm = 7.94
+        pitch_diameter_mm = 38.5
+        [point.envelope]
+        band_hz = [2800.0, 3200.0]
+        """)
+    cfg, _ = write_config(tmp_path, SIMULATED, "enabled = false", points)
+    r = ballpass("selftest", "--config", str(cfg))
+    assert r.returncode == 0, r.stdout + r.stderr
+    result, detail = parse_lines(r.stdout)["point raw-water-pump-2-de"]
+    assert result == "WARN"
+    assert "envelope.band_hz 2800-3200 Hz is 400 Hz wide" in detail
+    assert "3 of 8 BPFI" in detail
+
+
 def _wav_config(tmp_path, wav, fs):
     source = textwrap.dedent(f"""
         [source]
