@@ -49,7 +49,7 @@ from collections import deque
 from dataclasses import dataclass, field
 
 from agent.baseline import DEFECT_KEYS
-from agent.findings import DEFECTS, modulation_meaning
+from agent.findings import DEFECTS, modulation_meaning, sidebands_resolved
 from agent.dsp.iso import zone_limits_mm_s
 from agent.safety import CAUTION
 
@@ -340,8 +340,10 @@ class AlertEngine:
             harmonics = d.get("harmonics") if isinstance(d.get("harmonics"), int) else 0
             watch, act = self.settings.defect_watch_snr_db, self.settings.defect_act_snr_db
             raw = 2 if (snr >= act and harmonics >= _MIN_ACT_HARMONICS) else int(snr >= watch)
+            resolved = sidebands_resolved(_num(d.get("modulation_hz")),
+                                          _num((analysis.get("envelope") or {}).get("resolution_hz")))
             out.append(_Reading(f"defect:{key}", f"{key}_snr_db", snr, watch, act, "defect", raw,
-                                self._defect_text(key, d, finding, snr, harmonics)))
+                                self._defect_text(key, d, finding, snr, harmonics, resolved)))
         return out
 
     # ------------------------------------------------------------------ text
@@ -384,14 +386,14 @@ class AlertEngine:
                     + self._hold_text(held, limit, unit))
         return describe
 
-    def _defect_text(self, key, d, finding, snr, harmonics):
+    def _defect_text(self, key, d, finding, snr, harmonics, resolved=True):
         part, label = DEFECT_NAMES[key]
         freq = _num(d.get("found_hz"))
         if freq is None:
             freq = _num(d.get("expected_hz"))
         freq_words = f"{label} {freq:.3g} Hz" if freq is not None else label
         plural = "harmonic" if harmonics == 1 else "harmonics"
-        meaning = modulation_meaning(key, finding.get("modulation", "none"))
+        meaning = modulation_meaning(key, finding.get("modulation", "none"), resolved)
         meaning = f" {meaning}" if meaning else ""
         s = self.settings
 

@@ -45,6 +45,9 @@ Rules (all thresholds are module constants, documented here):
   and nearer to it than that defect's own harmonic is, belongs to that defect:
   the ratio is then twice the other sideband over the line (the two are equal
   for pure amplitude modulation), or ``None`` when both are taken;
+- sidebands nearer to their line than ``MIN_SIDEBAND_BINS`` bins (a capture
+  too short for the modulating frequency) are not measured: the finding says
+  the load cannot be read from them rather than that there are none;
 - the signature is *modulated* when the sideband ratio at the fundamental is
   at least ``SIDEBAND_RATIO_MIN`` and one sideband stands out;
 - severity: ``high`` from ``HIGH_SNR_DB`` or ``HIGH_HARMONICS`` harmonics,
@@ -60,7 +63,7 @@ import math
 from agent.dsp.peaks import bin_floats, find_peak, noise_floor, sideband_ratio, snr_db
 
 __all__ = ["DEFECTS", "search_defect", "shaft_lines", "count_harmonics", "judge",
-           "summary_sentence", "modulation_meaning", "same_line_words"]
+           "summary_sentence", "modulation_meaning", "same_line_words", "sidebands_resolved"]
 
 HARMONIC_SNR_DB = 6.0
 FUNDAMENTAL_SNR_DB = 10.0
@@ -88,6 +91,10 @@ FLANK_STRONGER_DB = 6.0
 FLANK_DIP_DB = 6.0
 _FLANK_STRONGER = 10.0 ** (FLANK_STRONGER_DB / 20.0)
 _FLANK_DIP = 10.0 ** (FLANK_DIP_DB / 20.0)
+#: Sidebands nearer to their line than this many bins lie within its own
+#: width (a Hann-windowed line spans +-2 bins, a slip-broadened one more) and
+#: cannot be measured: a capture too short for its modulating frequency.
+MIN_SIDEBAND_BINS = 2.5
 #: A defect's line is taken for another defect's harmonic only when that
 #: defect's fundamental is at least this fraction of it (-6 dB).
 FAMILY_MIN_RATIO = 0.5
@@ -151,6 +158,7 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
            "base_hz": expected_hz, "sidebands": None, "tolerance": tolerance,
            "asked": harmonics}
     base = expected_hz
+    resolved = sidebands_resolved(modulation_hz, df_hz)
     for h in range(1, harmonics + 1):
         target = h * base
         tol_hz = tolerance * target if h == 1 else 0.25 * tolerance * target
@@ -168,7 +176,9 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
                 base = pk.freq_hz
                 out["base_hz"] = base
         out["lines"].append((h, pk.freq_hz, pk.amplitude, s))
-    if out["found_hz"] is not None and modulation_hz and out["snr_db"] >= HARMONIC_SNR_DB:
+    out["sidebands_resolved"] = resolved
+    if out["found_hz"] is not None and modulation_hz and out["snr_db"] >= HARMONIC_SNR_DB \
+            and resolved:
         fc = out["found_hz"]
         ratio, lower, upper = sideband_ratio(amp, df_hz, fc, modulation_hz,
                                              0.25 * tolerance * fc + 1.5 * df_hz)
@@ -180,6 +190,15 @@ def search_defect(amp, df_hz, expected_hz, harmonics, tolerance, modulation_hz=N
             carrier = (lower + upper) / ratio if ratio > 0 else out["amplitude"]
             out["sidebands"] = (lower, upper, carrier, floor)
     return out
+
+
+def sidebands_resolved(modulation_hz, df_hz):
+    """True when sidebands ``modulation_hz`` from their line can be told from it
+    at a resolution of ``df_hz`` (at least ``MIN_SIDEBAND_BINS`` bins away),
+    or when there is no modulating frequency to resolve."""
+    if not modulation_hz or not df_hz:
+        return True
+    return modulation_hz >= MIN_SIDEBAND_BINS * df_hz
 
 
 def _sideband_places(f_hz, modulation_hz):
@@ -557,9 +576,17 @@ _MEANING = {
     ("bsf", "none"): "with no cage-rate sidebands",
     ("ftf", "none"): "at the cage rate: a worn or broken cage, or a rolling element defect",
 }
+_UNRESOLVED = {
+    "bpfo": ("its shaft-rate sidebands would lie within the line's own width at this "
+             "resolution (the capture is too short), so what the load does cannot be read"),
+    "bpfi": ("its shaft-rate sidebands would lie within the line's own width at this "
+             "resolution (the capture is too short), so what the load does cannot be read"),
+    "bsf": ("its cage-rate sidebands would lie within the line's own width at this "
+            "resolution (the capture is too short), so they cannot be read"),
+}
 
 
-def modulation_meaning(key, modulation):
+def modulation_meaning(key, modulation, resolved=True):
     """What the sidebands of a defect's lines, or their absence, say about the load.
 
     The one wording of it, used by the findings and by the alert reasons.
@@ -570,6 +597,10 @@ def modulation_meaning(key, modulation):
         ``"bpfo"``, ``"bpfi"``, ``"bsf"`` or ``"ftf"``.
     modulation : str
         ``"shaft"``, ``"cage"`` or ``"none"`` (a finding's ``modulation``).
+    resolved : bool, default True
+        False when the capture was too short to resolve the defect's
+        sidebands (:func:`sidebands_resolved`): the clause says so instead
+        of reading an absence of sidebands.
 
     Returns
     -------
@@ -577,12 +608,14 @@ def modulation_meaning(key, modulation):
         A clause without a final full stop, e.g. "with sidebands at shaft
         speed: ..."; empty for a combination with nothing to say.
     """
+    if not resolved and key in _UNRESOLVED:
+        return _UNRESOLVED[key]
     return _MEANING.get((key, modulation if modulation in ("shaft", "cage") else "none"), "")
 
 
 def _text(key, ev, modulation, severity):
     label, what, _ = DEFECTS[key]
-    meaning = modulation_meaning(key, modulation)
+    meaning = modulation_meaning(key, modulation, ev.get("sidebands_resolved", True))
     strength = {"low": "Weak", "medium": "Clear", "high": "Strong"}[severity]
     found = ev["found_hz"] if ev["found_hz"] is not None else ev["expected_hz"]
     return (f"{strength} {what.lower()} defect signature at {found:.1f} Hz ({label}, "
@@ -659,9 +692,12 @@ def same_line_words(key, on_key, harmonic=None):
             f"the envelope cannot tell the two apart")
 
 
-def summary_sentence(findings):
-    """One sentence on what the modulation says about the load, or ''."""
-    mods = {f["defect"]: f["modulation"] for f in findings}
+def summary_sentence(findings, unresolved=()):
+    """One sentence on what the modulation says about the load, or ''.
+
+    ``unresolved``: defects whose sidebands the capture could not resolve
+    (their ``"none"`` says nothing about the load)."""
+    mods = {f["defect"]: f["modulation"] for f in findings if f["defect"] not in unresolved}
     o, i = mods.get("bpfo"), mods.get("bpfi")
     if o == "shaft" and i == "shaft":
         return ("Both races show shaft-rate modulation: a rotating load (unbalance) and a "

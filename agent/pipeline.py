@@ -520,7 +520,8 @@ class Pipeline:
             quality=tuple(flags),
             defects={k: _public(v) for k, v in defects.items()},
             findings=tuple(findings),
-            summary=summary_sentence(findings),
+            summary=summary_sentence(findings, {k for k, ev in defects.items()
+                                                if not ev.get("sidebands_resolved", True)}),
             _spectrum=spectrum,
         )
 

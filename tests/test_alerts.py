@@ -248,6 +248,25 @@ def test_inner_race_text_says_what_even_impacts_mean():
         assert modulation_meaning("bpfi", modulation) in text
 
 
+def test_unresolved_sidebands_are_not_read_as_even_impacts():
+    # from memory: a Hann-windowed line spans +-2 bins, so sidebands 1x = 24.7 Hz
+    # away cannot be told from it at 12.5 Hz bins; "no sidebands" would then be a
+    # claim the spectrum cannot back
+    point, settings = make(raise_after=1, baseline_captures=0)
+    analysis = capture()
+    analysis["envelope"] = {"band_hz": [2000.0, 6000.0], "band_source": "config",
+                            "band_kurtosis": None, "resolution_hz": 12.5, "segments": 3}
+    analysis["defects"]["bpfi"] = {"expected_hz": 119.4, "found_hz": 119.5, "amplitude": 0.3,
+                                   "snr_db": 24.0, "harmonics": 6, "sideband_ratio": None,
+                                   "modulation_hz": 24.7}
+    analysis["findings"] = [{"defect": "bpfi", "severity": "high", "modulation": "none",
+                             "text": "x"}]
+    text = AlertEngine(point, settings, None).update(analysis).text
+    assert modulation_meaning("bpfi", "none", resolved=False) in text
+    assert "capture is too short" in text
+    assert "no shaft-rate sidebands" not in text
+
+
 # -------------------------------------------------------------- baseline
 def test_baseline_learnt_as_median_and_persisted(tmp_path):
     point, settings = make(raise_after=1, clear_after=1, baseline_captures=5,

@@ -310,6 +310,13 @@ SWEEP_CASES = [
                  dict(band_hz=(1800, 4200), seed=802372, resonance_hz=3000.0, impact_m_s2=5.33,
                       capture_s=2.0),
                  {("bpfo", "shaft")}, id="bpfo-sidebands-at-coarse-resolution"),
+    # 1 s capture (3.1 Hz bins), shaft 12.6 Hz: FTF (5.0 Hz) is 1.6 bins, within the
+    # line's own width; a "cage modulation" read from its skirt made the outer race
+    # a rolling element.  Unresolvable sidebands are not measured.
+    pytest.param(_bearing(8, 12.34, 39.139, 40.0), 12.5737, 44100, {"outer"}, "none",
+                 dict(band_hz=(1800, 4200), seed=637107, resonance_hz=3000.0, impact_m_s2=5.856,
+                      capture_s=1.0),
+                 {("bpfo", "none")}, id="ftf-sidebands-unresolved-at-1s"),
     # 6 balls, BPFI + 1x lies 0.9 Hz from 2 x BPFO: the upper sideband is BPFO's,
     # the lower one still shows the inner race's 1x modulation
     pytest.param(_bearing(6, 6.157, 27.05), 18.99, 25600, {"outer", "inner"}, "both",

@@ -788,6 +788,25 @@ def test_sidebands_at_a_coarse_resolution_are_not_taken_for_the_floor():
     assert ev["snr_db"] >= 10.0
 
 
+def test_sidebands_within_the_lines_own_width_are_not_measured():
+    # from memory: a Hann-windowed line spans +-2 bins; sidebands nearer than 2.5
+    # bins are part of the line's own shape, and a "ratio" of them would read any
+    # line as modulated.  An unmodulated line at 3.1 Hz bins (a 1 s capture at
+    # 51.2 kHz), with a 5 Hz cage rate: no ratio, and the finding says why.
+    from agent.findings import count_harmonics, judge, search_defect
+    df, f0 = 3.125, 100.0
+    bins = np.arange(2000) * df
+    amp = 1e-3 + sum(0.5 / h / (1.0 + ((bins - h * f0) / 2.0) ** 2) for h in range(1, 9))
+    ev = {"bsf": search_defect(amp, df, f0, 8, 0.02, modulation_hz=5.0)}
+    assert ev["bsf"]["sideband_ratio"] is None and not ev["bsf"]["sidebands_resolved"]
+    count_harmonics(ev, 37.0, df, standing_shaft=[], amp=amp)
+    (finding,) = judge(ev, flagged=False)
+    assert finding["modulation"] == "none" and "capture is too short" in finding["text"]
+    # 8 bins away, the same line is judged as before
+    resolved = search_defect(amp, df, f0, 8, 0.02, modulation_hz=25.0)
+    assert resolved["sidebands_resolved"] and resolved["sideband_ratio"] is not None
+
+
 def test_list_median_is_the_numpy_median():
     # reference library: numpy.median (odd and even counts, one value, ties)
     from agent.dsp.peaks import list_median
