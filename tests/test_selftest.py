@@ -27,21 +27,24 @@ def ballpass(*args):
                           text=True, timeout=120)
 
 
+ONE_POINT = textwrap.dedent("""
+    [[point]]
+    name = "raw-water-pump-2-de"
+    channel = 0
+    sensitivity_mv_per_g = 100.0
+    [point.machine]
+    shaft_hz = 24.75
+    [point.bearing]
+    balls = 8
+    ball_diameter_mm = 7.94
+    pitch_diameter_mm = 38.5
+    """)
+
+
 def write_config(tmp_path, source, broker="enabled = false", points=None, state_dir=None):
     state = state_dir or tmp_path / "state"
     state.mkdir(exist_ok=True)
-    points = points or textwrap.dedent("""
-        [[point]]
-        name = "raw-water-pump-2-de"
-        channel = 0
-        sensitivity_mv_per_g = 100.0
-        [point.machine]
-        shaft_hz = 24.75
-        [point.bearing]
-        balls = 8
-        ball_diameter_mm = 7.94
-        pitch_diameter_mm = 38.5
-        """)
+    points = points or ONE_POINT
     text = textwrap.dedent(f"""
         [agent]
         site = "larkspur-water-works"
@@ -180,19 +183,7 @@ def test_a_configured_band_too_narrow_for_the_harmonics_warns(tmp_path):
     # from memory: the squared envelope of a band B Hz wide holds nothing above B.
     # BPFI of this 8-ball bearing at 24.75 Hz is 4.94 x 24.75 = 122 Hz (from
     # memory, the geometric formula); a 400 Hz band holds 3 of its 8 harmonics.
-    points = textwrap.dedent("""
-        [[point]]
-        name = "raw-water-pump-2-de"
-        channel = 0
-        [point.machine]
-        shaft_hz = 24.75
-        [point.bearing]
-        balls = 8
-        ball_diameter_mm = 7.94
-        pitch_diameter_mm = 38.5
-        [point.envelope]
-        band_hz = [2800.0, 3200.0]
-        """)
+    points = ONE_POINT + "[point.envelope]\nband_hz = [2800.0, 3200.0]\n"
     cfg, _ = write_config(tmp_path, SIMULATED, "enabled = false", points)
     r = ballpass("selftest", "--config", str(cfg))
     assert r.returncode == 0, r.stdout + r.stderr
