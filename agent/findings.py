@@ -439,6 +439,7 @@ def _seek_at_expected(amp, df_hz, ev):
                           follow=False)
     ev["lines"] = ev["lines"][:1] + [line for line in again["lines"] if line[0] >= 2]
     ev["base_hz"] = ev["expected_hz"]
+    ev["searched"] = again["searched"]  # harmonics inside the spectrum at the expected rate
 
 
 def _on_flank(amp, df_hz, f_hz, amplitude, skip, evidence, sidebands=()):
